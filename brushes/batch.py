@@ -1,0 +1,226 @@
+"""Batch runs: one recipe over many meshes, on a local process pool or a Dask cluster.
+
+Each mesh is an independent task: load it, replay the recipe stroke by stroke
+(``Recipe.apply``), save the posed mesh atomically in the same format. A failing mesh
+is recorded with its reason and the others carry on. Nothing here prints; the caller
+(``brushes.cli``) owns the progress bar and the messages.
+
+Example::
+
+    from brushes.batch import plan, run_batch
+    tasks = plan(["a.obj", "b.ply"], "posed")        # [(source, target), ...]
+    outcomes = run_batch("pose.json", tasks, jobs=2)
+    failed = [o for o in outcomes if not o.ok]
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import time
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable, Iterable, Sequence
+
+__all__ = ["BatchError", "ClusterUnavailable", "Outcome", "plan", "pose_file", "run_batch"]
+
+
+class BatchError(ValueError):
+    """A batch that cannot start: clashing outputs, an output over an input, a bad option."""
+
+
+class ClusterUnavailable(BatchError):
+    """``--scheduler`` was given but dask.distributed is missing or the scheduler is unreachable."""
+
+
+@dataclass(frozen=True)
+class Outcome:
+    """The result of one mesh: ``error`` is None when it was posed and written."""
+
+    source: str
+    target: str
+    error: str | None
+    seconds: float
+
+    @property
+    def ok(self) -> bool:
+        return self.error is None
+
+
+def describe(exc: BaseException) -> str:
+    """One line naming what went wrong, without a traceback."""
+    if isinstance(exc, OSError) and exc.strerror:
+        where = f"{exc.filename}: " if exc.filename else ""
+        text = f"{where}{exc.strerror}"
+    else:
+        text = str(exc) or type(exc).__name__
+    if not isinstance(exc, (ValueError, OSError)):
+        text = f"{type(exc).__name__}: {text}"
+    return " ".join(text.split())
+
+
+def plan(mesh_paths: Iterable[str | os.PathLike], out_dir: str | os.PathLike, *,
+         force: bool = False) -> list[tuple[str, str]]:
+    """Pair each input mesh with its output ``out_dir/<input file name>``.
+
+    Returns absolute paths (workers may run in another directory). Raises ``BatchError``
+    when two inputs share a file name, or when an output would be an input and
+    ``force`` is False.
+    """
+    out_dir = Path(out_dir).absolute()
+    sources = [Path(p).absolute() for p in mesh_paths]
+    if not sources:
+        raise BatchError("meshes: no input meshes given")
+    seen: dict[str, Path] = {}
+    for src in sources:
+        if src.name in seen:
+            raise BatchError(f"meshes: {seen[src.name]} and {src} would both be written as "
+                             f"{out_dir / src.name}; give inputs distinct file names")
+        seen[src.name] = src
+    inputs = {_identity(src) for src in sources}
+    tasks = []
+    for src in sources:
+        dst = out_dir / src.name
+        if not force and _identity(dst) in inputs:
+            raise BatchError(f"--out: {dst} is an input mesh; refusing to write over it "
+                             "(use --force)")
+        tasks.append((str(src), str(dst)))
+    return tasks
+
+
+def _identity(path: Path):
+    """A key that is equal for two names of the same file (device and inode when it exists)."""
+    try:
+        st = path.stat()
+        return ("inode", st.st_dev, st.st_ino)
+    except OSError:
+        return ("path", os.path.normcase(os.path.realpath(path)))
+
+
+def pose_file(recipe, source: str, target: str) -> Outcome:
+    """Pose one mesh file with ``recipe`` and write it to ``target``; never raises on bad data.
+
+    recipe : a ``brushes.recipe.Recipe`` (picklable) or a path to a recipe file.
+    Any ``Exception`` from loading, posing or saving becomes ``Outcome.error``.
+    """
+    start = time.perf_counter()
+    try:
+        from brushes.meshio import load_mesh, save_mesh
+        from brushes.recipe import load_recipe
+
+        if isinstance(recipe, (str, os.PathLike)):
+            recipe = load_recipe(recipe)
+        doc = load_mesh(source)
+        posed = recipe.apply(doc.vertices, groups=_groups(doc))
+        save_mesh(doc, target, vertices=posed)
+        error = None
+    except Exception as exc:  # noqa: BLE001 - one bad mesh must not stop the batch
+        error = describe(exc)
+    return Outcome(source, target, error, time.perf_counter() - start)
+
+
+def _groups(doc):
+    """The mesh's named vertex groups for recipe masks, or None when the format has none."""
+    return getattr(doc, "groups", None)
+
+
+def _ignore_sigint() -> None:
+    # Workers leave Ctrl-C to the parent, which cancels what has not started and waits
+    # for the running meshes to finish their (atomic) writes.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+def run_batch(recipe, tasks: Sequence[tuple[str, str]], *, jobs: int | None = None,
+              scheduler: str | None = None,
+              on_done: Callable[[Outcome], None] | None = None) -> list[Outcome]:
+    """Run ``pose_file`` over ``tasks`` and return one ``Outcome`` per task, in task order.
+
+    recipe : ``Recipe`` or path to a recipe file.
+    tasks : sequence of (source, target) path pairs, e.g. from ``plan``.
+    jobs : local worker processes (default ``os.cpu_count()``); 1 runs in this process.
+    scheduler : address of a Dask distributed scheduler; the work runs there instead.
+        Workers must see the same paths (a shared file system).
+    on_done : called with each ``Outcome`` as it completes (in completion order).
+
+    Ctrl-C (``KeyboardInterrupt``) cancels the meshes not yet started, lets the running
+    ones finish their atomic writes, and is re-raised.
+    """
+    if jobs is not None and jobs < 1:
+        raise BatchError(f"--jobs: must be at least 1, got {jobs}")
+    if isinstance(recipe, os.PathLike):
+        recipe = os.fspath(recipe)
+    on_done = on_done or (lambda outcome: None)
+    tasks = list(tasks)
+    if not tasks:
+        return []
+    if scheduler is not None:
+        return _run_dask(recipe, tasks, scheduler, on_done)
+    jobs = min(jobs or os.cpu_count() or 1, len(tasks))
+    if jobs == 1:
+        outcomes = []
+        for source, target in tasks:
+            outcome = pose_file(recipe, source, target)
+            on_done(outcome)
+            outcomes.append(outcome)
+        return outcomes
+    return _run_pool(recipe, tasks, jobs, on_done)
+
+
+def _run_pool(recipe, tasks, jobs, on_done) -> list[Outcome]:
+    results: dict[int, Outcome] = {}
+    pool = ProcessPoolExecutor(max_workers=jobs, initializer=_ignore_sigint)
+    try:
+        pending = {pool.submit(pose_file, recipe, src, dst): i
+                   for i, (src, dst) in enumerate(tasks)}
+        while pending:
+            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            for future in done:
+                i = pending.pop(future)
+                try:
+                    outcome = future.result()
+                except BrokenProcessPool:
+                    src, dst = tasks[i]
+                    outcome = Outcome(src, dst, "worker process stopped unexpectedly", 0.0)
+                results[i] = outcome
+                on_done(outcome)
+    except BaseException:
+        pool.shutdown(wait=True, cancel_futures=True)
+        raise
+    pool.shutdown(wait=True)
+    return [results[i] for i in range(len(tasks))]
+
+
+def _run_dask(recipe, tasks, address, on_done) -> list[Outcome]:
+    try:
+        from distributed import Client, as_completed
+    except ImportError as exc:
+        raise ClusterUnavailable(
+            "--scheduler needs dask.distributed: pip install pliant[cluster]") from exc
+    try:
+        client = Client(address, timeout="10s", set_as_default=False)
+    except (OSError, TimeoutError, ValueError) as exc:
+        raise ClusterUnavailable(f"--scheduler: cannot reach {address}: {describe(exc)}") from exc
+    futures = []
+    try:
+        futures = [client.submit(pose_file, recipe, src, dst, pure=False)
+                   for src, dst in tasks]
+        index = {future.key: i for i, future in enumerate(futures)}
+        results: dict[int, Outcome] = {}
+        for future in as_completed(futures):
+            i = index[future.key]
+            try:
+                outcome = future.result()
+            except Exception as exc:  # noqa: BLE001 - e.g. a worker lost mid-task
+                src, dst = tasks[i]
+                outcome = Outcome(src, dst, f"cluster: {describe(exc)}", 0.0)
+            results[i] = outcome
+            on_done(outcome)
+        return [results[i] for i in range(len(tasks))]
+    except BaseException:
+        if futures:
+            client.cancel(futures)
+        raise
+    finally:
+        client.close()

@@ -1,0 +1,481 @@
+"""The ``pliant`` command: pose meshes with recipes, in batches, and inspect the results.
+
+This is the only layer that prints errors and picks exit codes:
+
+====  ==========================================================================
+code  meaning
+====  ==========================================================================
+0     success
+1     partial failure: some meshes of a batch failed (or an internal error)
+2     bad input or usage: missing or unreadable file, bad mesh or recipe, refused
+      overwrite, mismatched meshes, bad option
+130   interrupted (Ctrl-C); no half-written files are left
+====  ==========================================================================
+
+An error is one line on stderr, ``pliant: error: <message>``; ``--debug`` adds the
+traceback. ``main(argv)`` returns the exit code instead of exiting.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import re
+import sys
+import time
+import traceback
+from pathlib import Path
+
+PROG = "pliant"
+
+EXIT_OK = 0
+EXIT_PARTIAL = 1
+EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130
+
+DESCRIPTION = """\
+pliant poses 3D meshes with elastic brushes (grab, twist, scale, pinch) driven by
+regularized Kelvinlets (de Goes & James, ACM TOG 36(4), 2017).
+
+This is a visual posing tool. Its elasticity is an idealized model for shaping
+geometry, not an engineering, structural or medical analysis. For anything that
+bears load or touches a body, follow local codes and licensed professionals.
+"""
+
+EPILOG = """\
+examples:
+  pliant demo                                   pose the bundled mascot into ./pliant-demo
+  pliant apply pose.json figure.obj -o posed.obj --delta posed.glb
+  pliant batch pose.json assets/*.obj --out posed/ --jobs 2
+  pliant report figure.obj posed.obj --json
+  pliant view posed.obj
+
+exit codes:
+  0    success
+  1    partial failure (some meshes of a batch failed)
+  2    bad input or usage (missing file, bad mesh or recipe, refused overwrite)
+  130  interrupted (Ctrl-C)
+
+Run 'pliant COMMAND --help' for the options of a command; add --debug before the
+command to see tracebacks.
+"""
+
+HELP = {
+    "apply": ("pose one mesh with a recipe",
+              "Replay a recipe stroke by stroke on one mesh and write the posed mesh.\n"
+              "The output format follows OUT's extension (.obj .ply .stl .off .glb .gltf);\n"
+              "OBJ to OBJ keeps the file's structure (groups, normals, texture coordinates).",
+              """\
+examples:
+  pliant apply pose.json figure.obj -o figure-posed.obj
+  pliant apply pose.json figure.obj -o figure-posed.glb --delta figure-pose.npz
+  pliant apply pose.json figure.obj -o figure.obj --force    (replace the input)
+"""),
+    "batch": ("pose many meshes with one recipe, in parallel",
+              "Pose every MESH with RECIPE and write each result as DIR/<input file name>.\n"
+              "Meshes run in parallel on local processes, or on a Dask cluster with\n"
+              "--scheduler (workers must see the same paths). A failing mesh is named with\n"
+              "its reason and the others complete; exit 1 when any failed.",
+              """\
+examples:
+  pliant batch pose.json assets/*.obj --out posed/
+  pliant batch pose.json a.obj b.ply c.glb --out posed/ --jobs 2
+  pliant batch pose.json assets/*.obj --out posed/ --scheduler tcp://10.0.0.5:8786
+    (needs: pip install pliant[cluster])
+"""),
+    "delta": ("corrective shape from a rest and a posed mesh",
+              "Write the corrective shape (posed minus rest, per vertex) of two meshes\n"
+              "with the same vertices and faces: .npz (numpy deltas) or .glb/.gltf (glTF\n"
+              "morph target on the rest mesh).",
+              """\
+examples:
+  pliant delta figure.obj figure-posed.obj -o figure-pose.npz
+  pliant delta figure.obj figure-posed.obj -o figure-pose.glb
+"""),
+    "report": ("quality report of a posed mesh against its rest mesh",
+               "Compare a posed mesh with its rest mesh: volume change, displacement,\n"
+               "flipped faces and stretch. Prints a table, or JSON with --json.",
+               """\
+examples:
+  pliant report figure.obj figure-posed.obj
+  pliant report figure.obj figure-posed.obj --json > report.json
+"""),
+    "demo": ("pose the bundled mascot and write mesh, corrective shape and report",
+             "Apply the bundled recipe (mascot-pose.json) to the bundled workshop mascot\n"
+             "(mascot.obj) and write the posed mesh, the corrective shape (.glb and .npz)\n"
+             "and the quality report (JSON) into DIR.",
+             """\
+examples:
+  pliant demo
+  pliant demo --out /tmp/mascot
+"""),
+    "view": ("open the interactive viewer",
+             "Open the viewer window, optionally with a mesh loaded. --recover replays\n"
+             "the stroke journal left by a session that ended unexpectedly.",
+             """\
+examples:
+  pliant view
+  pliant view figure.obj
+  pliant view figure.obj --recover
+"""),
+    "snapshot": ("render a mesh to a PNG image without a window",
+                 "Render MESH off-screen to a PNG, optionally after applying a recipe.",
+                 """\
+examples:
+  pliant snapshot figure.obj -o figure.png
+  pliant snapshot figure.obj -o posed.png --recipe pose.json --size 800x600
+  pliant snapshot figure.obj -o side.png --view side
+"""),
+}
+
+
+class CliError(ValueError):
+    """Bad input or usage found by the command itself (exit 2)."""
+
+
+# --------------------------------------------------------------------------- parser
+
+def _size(text: str) -> tuple[int, int]:
+    match = re.fullmatch(r"\s*(\d+)\s*[xX]\s*(\d+)\s*", text)
+    if not match or int(match[1]) < 1 or int(match[2]) < 1:
+        raise argparse.ArgumentTypeError(f"expected WIDTHxHEIGHT such as 800x600, got {text!r}")
+    return int(match[1]), int(match[2])
+
+
+def _jobs(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {value}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argparse parser of the ``pliant`` command."""
+    parser = argparse.ArgumentParser(
+        prog=PROG, description=DESCRIPTION, epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--debug", action="store_true",
+                        help="show the full traceback when something fails")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+
+    def command(name: str) -> argparse.ArgumentParser:
+        summary, description, epilog = HELP[name]
+        p = sub.add_parser(name, help=summary, description=description, epilog=epilog,
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+        p.set_defaults(func=globals()[f"cmd_{name}"])
+        return p
+
+    p = command("apply")
+    p.add_argument("recipe", metavar="RECIPE", help="recipe file (.json)")
+    p.add_argument("mesh", metavar="MESH", help="mesh to pose")
+    p.add_argument("-o", "--out", required=True, metavar="OUT",
+                   help="posed mesh to write; format from the extension")
+    p.add_argument("--delta", metavar="OUT2",
+                   help="also write the corrective shape (.npz, .glb or .gltf)")
+    p.add_argument("--force", action="store_true", help="allow writing over an input file")
+
+    p = command("batch")
+    p.add_argument("recipe", metavar="RECIPE", help="recipe file (.json)")
+    p.add_argument("meshes", metavar="MESH", nargs="+", help="meshes to pose")
+    p.add_argument("--out", required=True, metavar="DIR",
+                   help="folder for the posed meshes (created if missing)")
+    p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
+                   help="local worker processes (default: number of cores)")
+    p.add_argument("--scheduler", metavar="ADDRESS",
+                   help="run on a Dask distributed scheduler, e.g. tcp://host:8786")
+    p.add_argument("--force", action="store_true", help="allow writing over an input file")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+
+    p = command("delta")
+    p.add_argument("rest", metavar="REST", help="rest mesh")
+    p.add_argument("posed", metavar="POSED", help="posed mesh (same vertices and faces)")
+    p.add_argument("-o", "--out", required=True, metavar="OUT",
+                   help="corrective shape to write (.npz, .glb or .gltf)")
+    p.add_argument("--force", action="store_true", help="allow writing over an input file")
+
+    p = command("report")
+    p.add_argument("rest", metavar="REST", help="rest mesh")
+    p.add_argument("posed", metavar="POSED", help="posed mesh (same vertices and faces)")
+    p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+
+    p = command("demo")
+    p.add_argument("--out", default="pliant-demo", metavar="DIR",
+                   help="output folder (default: ./pliant-demo)")
+
+    p = command("view")
+    p.add_argument("mesh", metavar="MESH", nargs="?", help="mesh to open")
+    p.add_argument("--recover", action="store_true",
+                   help="replay the stroke journal of an interrupted session")
+
+    p = command("snapshot")
+    p.add_argument("mesh", metavar="MESH", help="mesh to render")
+    p.add_argument("-o", "--out", required=True, metavar="PNG", help="image to write")
+    p.add_argument("--recipe", metavar="R", help="apply this recipe before rendering")
+    p.add_argument("--size", type=_size, default=(800, 600), metavar="WxH",
+                   help="image size in pixels (default: 800x600)")
+    p.add_argument("--view", metavar="SPEC", help="camera view (see the viewer's docs)")
+    p.add_argument("--force", action="store_true", help="allow writing over an input file")
+    return parser
+
+
+# --------------------------------------------------------------------------- helpers
+
+def _existing(path: str, what: str) -> Path:
+    p = Path(path)
+    if not p.exists():
+        raise CliError(f"{what}: {path}: no such file")
+    if p.is_dir():
+        raise CliError(f"{what}: {path}: is a folder, expected a file")
+    return p
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return os.path.samefile(a, b)
+    except OSError:
+        return os.path.realpath(a) == os.path.realpath(b)
+
+
+def _check_outputs(outputs: list[tuple[str, str | None]], inputs: list[str], *,
+                   force: bool) -> None:
+    """Refuse to write over an input (unless ``force``) or to write one file twice."""
+    named = [(opt, Path(p)) for opt, p in outputs if p is not None]
+    for opt, out in named:
+        if out.is_dir():
+            raise CliError(f"{opt}: {out} is a folder, expected a file name")
+        if not force:
+            for inp in inputs:
+                if _same_file(out, Path(inp)):
+                    raise CliError(f"{opt}: {out} is an input file; refusing to write over it "
+                                   "(use --force)")
+    for i, (opt_a, a) in enumerate(named):
+        for opt_b, b in named[i + 1:]:
+            if _same_file(a, b):
+                raise CliError(f"{opt_b}: {b} is also the {opt_a} output; give distinct names")
+
+
+def _same_topology(rest, posed, rest_name: str, posed_name: str) -> None:
+    import numpy as np
+
+    nr, np_ = len(rest.vertices), len(posed.vertices)
+    if nr != np_:
+        raise CliError(f"{posed_name}: has {np_} vertices but {rest_name} has {nr}; "
+                       "a corrective shape needs the same mesh in two poses")
+    if np.shape(rest.faces) != np.shape(posed.faces) or not np.array_equal(rest.faces,
+                                                                           posed.faces):
+        raise CliError(f"{posed_name}: faces differ from {rest_name}; "
+                       "a corrective shape needs the same mesh in two poses")
+
+
+def _groups(doc):
+    return getattr(doc, "groups", None)
+
+
+# --------------------------------------------------------------------------- commands
+
+def cmd_apply(args) -> int:
+    from brushes.meshio import load_mesh, save_mesh
+    from brushes.recipe import load_recipe
+
+    _existing(args.recipe, "RECIPE")
+    _existing(args.mesh, "MESH")
+    _check_outputs([("--out", args.out), ("--delta", args.delta)], [args.recipe, args.mesh],
+                   force=args.force)
+    recipe = load_recipe(args.recipe)
+    doc = load_mesh(args.mesh)
+    posed = recipe.apply(doc.vertices, groups=_groups(doc))
+    save_mesh(doc, args.out, vertices=posed)
+    print(f"posed: {args.out}")
+    if args.delta:
+        from brushes.correctives import write_delta
+
+        write_delta(args.delta, doc, posed)
+        print(f"corrective shape: {args.delta}")
+    return EXIT_OK
+
+
+def cmd_batch(args) -> int:
+    from brushes.batch import plan, run_batch
+    from brushes.recipe import load_recipe
+
+    _existing(args.recipe, "RECIPE")
+    if args.scheduler is not None and args.jobs is not None:
+        raise CliError("--jobs: not used with --scheduler (the cluster sets its own workers)")
+    recipe = load_recipe(args.recipe)          # a bad recipe stops the batch before it starts
+    tasks = plan(args.meshes, args.out, force=args.force)
+    if not args.force and any(_same_file(Path(dst), Path(args.recipe)) for _, dst in tasks):
+        raise CliError(f"--out: writing into {args.out} would replace the recipe "
+                       f"{args.recipe}; refusing (use --force)")
+    Path(args.out).mkdir(parents=True, exist_ok=True)
+
+    from tqdm import tqdm
+
+    start = time.perf_counter()
+    failed = []
+    with tqdm(total=len(tasks), file=sys.stderr, unit="mesh", desc="batch",
+              disable=args.quiet, dynamic_ncols=True) as bar:
+        def done(outcome) -> None:
+            if not outcome.ok:
+                failed.append(outcome)
+                named = (outcome.error if outcome.source in outcome.error
+                         else f"{outcome.source}: {outcome.error}")
+                bar.write(f"{PROG}: error: {named}", file=sys.stderr)
+            bar.update(1)
+
+        outcomes = run_batch(recipe, tasks, jobs=args.jobs, scheduler=args.scheduler,
+                             on_done=done)
+    seconds = time.perf_counter() - start
+    posed = sum(o.ok for o in outcomes)
+    print(f"batch: {posed} posed, {len(outcomes) - posed} failed, {seconds:.1f} s")
+    return EXIT_OK if posed == len(outcomes) else EXIT_PARTIAL
+
+
+def cmd_delta(args) -> int:
+    from brushes.correctives import write_delta
+    from brushes.meshio import load_mesh
+
+    _existing(args.rest, "REST")
+    _existing(args.posed, "POSED")
+    _check_outputs([("--out", args.out)], [args.rest, args.posed], force=args.force)
+    rest = load_mesh(args.rest)
+    posed = load_mesh(args.posed)
+    _same_topology(rest, posed, args.rest, args.posed)
+    write_delta(args.out, rest, posed.vertices)
+    print(f"corrective shape: {args.out}")
+    return EXIT_OK
+
+
+def cmd_report(args) -> int:
+    from brushes import quality
+    from brushes.meshio import load_mesh
+
+    _existing(args.rest, "REST")
+    _existing(args.posed, "POSED")
+    rest = load_mesh(args.rest)
+    posed = load_mesh(args.posed)
+    _same_topology(rest, posed, args.rest, args.posed)
+    report = quality(rest.vertices, posed.vertices, rest.faces)
+    if args.json:
+        print(json.dumps(report, indent=2))
+    else:
+        from brushes.quality import format_quality
+
+        print(format_quality(report))
+    return EXIT_OK
+
+
+def demo_summary(report: dict) -> list[str]:
+    """Short human lines for the demo: volume change, max displacement, flipped faces."""
+    change = report.get("volume_change")
+    volume = ("n/a (the mesh is not closed)" if change is None
+              else f"{100.0 * change:+.2f} %")
+    return [f"volume change:     {volume}",
+            f"max displacement:  {report['max_displacement']:.4g}",
+            f"flipped faces:     {report['flipped_faces']}"]
+
+
+def cmd_demo(args) -> int:
+    from brushes.demo import run_demo
+
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        raise CliError(f"--out: {out} is a file, expected a folder")
+    result = run_demo(out)
+    print(f"posed the bundled mascot ({result.model.name}) with {result.recipe.name}")
+    print(f"  posed mesh:        {result.posed}")
+    print(f"  corrective shape:  {result.delta_glb}")
+    print(f"                     {result.delta_npz}")
+    print(f"  report:            {result.report_path}")
+    for line in demo_summary(result.report):
+        print(f"  {line}")
+    return EXIT_OK
+
+
+def cmd_view(args) -> int:
+    if args.mesh is not None:
+        _existing(args.mesh, "MESH")
+    try:
+        from viewer.app import run
+    except ImportError as exc:
+        raise CliError(f"the viewer cannot start: {exc}") from exc
+    result = run(args.mesh, recover=args.recover)
+    return EXIT_OK if result is None else int(result)
+
+
+def cmd_snapshot(args) -> int:
+    from brushes.meshio import load_mesh
+
+    _existing(args.mesh, "MESH")
+    inputs = [args.mesh] + ([args.recipe] if args.recipe else [])
+    if args.recipe:
+        _existing(args.recipe, "--recipe")
+    _check_outputs([("--out", args.out)], inputs, force=args.force)
+    if Path(args.out).suffix.lower() != ".png":
+        raise CliError(f"--out: {args.out}: expected a .png file name")
+    doc = load_mesh(args.mesh)
+    vertices = doc.vertices
+    if args.recipe:
+        from brushes.recipe import load_recipe
+
+        vertices = load_recipe(args.recipe).apply(vertices, groups=_groups(doc))
+    try:
+        from viewer.snapshot import snapshot
+    except ImportError as exc:
+        raise CliError(f"snapshots cannot be rendered: {exc}") from exc
+    snapshot(vertices, doc.faces, args.out, size=args.size, view=args.view)
+    print(f"snapshot: {args.out}")
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------- entry point
+
+def _message(exc: BaseException) -> str:
+    from brushes.batch import describe
+
+    return describe(exc)
+
+
+def _fail(message: str) -> None:
+    print(f"{PROG}: error: {message}", file=sys.stderr)
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line ``argv`` (default ``sys.argv[1:]``) and return the exit code."""
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:          # --help (0) and usage errors (2)
+        return exc.code if isinstance(exc.code, int) else EXIT_BAD_INPUT
+    debug = args.debug
+    try:
+        return args.func(args)
+    except KeyboardInterrupt:
+        if debug:
+            traceback.print_exc()
+        print(f"{PROG}: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # The reader of our output went away (e.g. piped into head): nothing left to say.
+        try:
+            sys.stdout = open(os.devnull, "w")
+        except OSError:
+            pass
+        return EXIT_PARTIAL
+    except (ValueError, OSError) as exc:
+        if debug:
+            traceback.print_exc()
+        _fail(_message(exc))
+        return EXIT_BAD_INPUT
+    except Exception as exc:  # noqa: BLE001 - the CLI edge answers every error in one line
+        if debug:
+            traceback.print_exc()
+        _fail(f"internal error: {_message(exc)} (rerun with --debug for the traceback)")
+        return EXIT_PARTIAL
+
+
+if __name__ == "__main__":
+    sys.exit(main())
