@@ -17,6 +17,17 @@ A short text of comma-separated ``name=value`` pairs, every one optional
 
     yaw=30,pitch=15,zoom=1.0,fov=40
 
+The first item may instead be a preset name, whose values the pairs after it override
+(``side,zoom=1.5``):
+
+=========  ===========================
+``front``  ``yaw=0,pitch=0``
+``side``   ``yaw=90,pitch=0``
+``back``   ``yaw=180,pitch=0``
+``top``    ``yaw=0,pitch=89``
+``angle``  ``yaw=30,pitch=15`` (default)
+=========  ===========================
+
 ``yaw``
     Degrees the camera has turned about the vertical (+Y) axis, starting from the front
     (+Z side, looking toward -Z); positive turns it round to the model's right (+X) side.
@@ -43,11 +54,19 @@ import numpy as np
 
 from viewer import palette
 
-__all__ = ["snapshot", "render_pixels", "snapshot_file", "parse_view", "parse_size",
-           "SnapshotError", "ViewSpecError", "DEFAULT_VIEW", "INSTALL_HINT"]
+__all__ = ["snapshot", "render_pixels", "camera_for", "parse_view", "parse_size",
+           "SnapshotError", "ViewSpecError", "DEFAULT_VIEW", "VIEW_PRESETS", "INSTALL_HINT"]
 
 #: Defaults of the view specification (degrees, plain factor).
 DEFAULT_VIEW = {"yaw": 30.0, "pitch": 15.0, "zoom": 1.0, "fov": 40.0}
+#: Named starting points of a view specification.
+VIEW_PRESETS = {
+    "front": {"yaw": 0.0, "pitch": 0.0},
+    "side": {"yaw": 90.0, "pitch": 0.0},
+    "back": {"yaw": 180.0, "pitch": 0.0},
+    "top": {"yaw": 0.0, "pitch": 89.0},
+    "angle": {"yaw": 30.0, "pitch": 15.0},
+}
 _VIEW_LIMITS = {"yaw": (-1e6, 1e6), "pitch": (-89.0, 89.0), "zoom": (1e-3, 1e3), "fov": (1e-3, 170.0)}
 
 #: What to install when no OpenGL context can be made (Debian and Ubuntu package names).
@@ -71,8 +90,8 @@ def parse_view(spec):
     Parameters
     ----------
     spec : str, dict or None
-        ``"yaw=30,pitch=15,zoom=1.0,fov=40"``; a dict with the same keys; or ``None`` for the
-        defaults. Missing names take their defaults.
+        ``"yaw=30,pitch=15,zoom=1.0,fov=40"`` or ``"side,zoom=1.5"``; a dict with the same
+        keys; or ``None`` for the defaults. Missing names take their defaults.
 
     Returns
     -------
@@ -91,12 +110,16 @@ def parse_view(spec):
         items = list(spec.items())
     elif isinstance(spec, str):
         items = []
-        for part in spec.split(","):
+        for index, part in enumerate(spec.split(",")):
             part = part.strip()
             if not part:
                 continue
+            if index == 0 and part.lower() in VIEW_PRESETS:
+                view.update(VIEW_PRESETS[part.lower()])
+                continue
             if "=" not in part:
-                raise ViewSpecError(f"view: expected name=value, got {part!r}")
+                raise ViewSpecError(f"view: expected name=value or, first, one of "
+                                    f"{', '.join(VIEW_PRESETS)}; got {part!r}")
             name, value = (s.strip() for s in part.split("=", 1))
             items.append((name, value))
     else:
@@ -334,43 +357,3 @@ def snapshot(vertices, faces, path, *, size=(800, 600), view=None, bounds=None, 
     with atomic_write(path, mode="wb") as handle:
         Image.fromarray(pixels, mode="RGB").save(handle, format="PNG")
     return path
-
-
-def snapshot_file(mesh_path, png_path, *, recipe=None, size=(800, 600), view=None):
-    """What ``pliant snapshot MESH -o PNG [--recipe R] [--size WxH] [--view SPEC]`` runs.
-
-    Loads the mesh with :func:`brushes.meshio.load_mesh`, replays the recipe on it when one is
-    given (framing stays on the rest shape so before/after pictures line up), and writes the
-    PNG with :func:`snapshot`.
-
-    Parameters
-    ----------
-    mesh_path, png_path : str or os.PathLike
-    recipe : str or os.PathLike, optional, keyword-only
-        Recipe file to replay before drawing.
-    size : (width, height) int or "WxH" str, keyword-only
-    view : str, optional, keyword-only
-        View specification.
-
-    Returns
-    -------
-    str
-        The PNG path written.
-    """
-    from brushes.meshio import load_mesh
-    if isinstance(size, str):
-        size = parse_size(size)
-    doc = load_mesh(mesh_path)
-    rest = np.asarray(doc.vertices, dtype=np.float64)
-    posed = rest
-    if recipe is not None:
-        posed = _replay(recipe, rest)
-    bounds = np.array([rest.min(axis=0), rest.max(axis=0)])
-    return snapshot(posed, doc.faces, png_path, size=size, view=view, bounds=bounds)
-
-
-def _replay(recipe_path, rest):
-    """Posed vertices after replaying a recipe file on ``rest`` ((n, 3) float64)."""
-    from brushes import recipe as recipe_module
-    loaded = recipe_module.load_recipe(recipe_path)
-    return np.asarray(loaded.replay(rest), dtype=np.float64)
