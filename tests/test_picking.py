@@ -239,3 +239,29 @@ def test_bad_input():
         p.pick([0, 0, 0], [0, 0, 0])
     with pytest.raises(ValueError, match="origin"):
         p.pick([0, 0], [0, 0, 1])
+
+
+def test_bench_runs_on_a_small_closed_torus():
+    from viewer.bench import bench_picking, wavy_torus
+
+    v, f = wavy_torus(2000)
+    assert len(f) >= 2000
+    assert trimesh.Trimesh(v, f, process=False).is_watertight  # trimesh's own closedness check
+    r = bench_picking(2000, n_picks=20, backend="numpy")
+    assert r["n_triangles"] == len(f) and r["hit_fraction"] == 1.0  # every ray aims at a face centroid
+    assert r["pick_median_s"] > 0 and r["refit_s"] > 0
+
+
+@pytest.mark.parametrize("backend", BACKENDS)
+def test_rays_through_vertices_and_edges_never_slip_through(backend):
+    # A closed surface (trimesh confirms it) must stop every ray aimed exactly at one of its
+    # vertices or edge midpoints, where plain Moller-Trumbore can miss both neighbours.
+    v, f = lumpy_sphere(2, seed=5)
+    assert trimesh.Trimesh(v, f, process=False).is_watertight
+    p = Picker(v, f, backend=backend)
+    rng = np.random.default_rng(14)
+    edges = trimesh.Trimesh(v, f, process=False).edges_unique
+    targets = np.concatenate([v, v[edges].mean(axis=1)])
+    for target in targets:
+        origin = rng.normal(size=3) * 3 + target * 4
+        assert p.pick(origin, target - origin).hit

@@ -10,9 +10,10 @@ picks exact; only their speed drops if the mesh moves far from the pose it was s
 (call :meth:`Picker.rebuild` then).
 
 The triangle test is Moller-Trumbore (T. Moller and B. Trumbore, "Fast, Minimum Storage
-Ray/Triangle Intersection", J. Graphics Tools 2(1), 1997), two-sided.  The box test is the
-slab test with the far distance widened by a few ulps (T. Ize, "Robust BVH Ray Traversal",
-JCGT 2(2), 2013) so rounding never culls a box the triangle test would hit.
+Ray/Triangle Intersection", J. Graphics Tools 2(1), 1997), two-sided, with a barycentric
+slack of ``EDGE_TOL`` so rays through shared edges and vertices cannot slip through.  The
+box test is the slab test with the far distance widened by a few ulps (T. Ize, "Robust BVH
+Ray Traversal", JCGT 2(2), 2013) so rounding never culls a box the triangle test would hit.
 
 Traversal and refit run in numba when it is importable (imported on first use) and in numpy
 otherwise; ``PLIANT_BACKEND=numpy`` forces numpy.
@@ -40,6 +41,10 @@ __all__ = ["Picker", "Hit", "morton_codes", "backend_name"]
 PARALLEL_TOL = 1e-12
 # Far-distance widening of the slab test: 1 + 2*gamma(3) in float64 (Ize 2013, section 3).
 FAR_WIDEN = 1.0 + 2 * (3 * 2.0**-53) / (1 - 3 * 2.0**-53)
+# Barycentric slack: a ray through a shared edge or vertex hits at least one of its triangles
+# despite rounding (plain Moller-Trumbore can slip between them); hits land at most this
+# fraction of an edge outside a triangle (common practice).
+EDGE_TOL = 1e-9
 # Ray direction components smaller than this are replaced by it (sign kept) before inverting.
 TINY = 1e-300
 
@@ -154,17 +159,21 @@ def morton_codes(points):
 
 
 def _refit_numpy(vertices, faces_sorted, n_leaves, leaf_size, lo, hi):
-    tri = vertices[faces_sorted]  # (m, 3, 3)
     m = len(faces_sorted)
-    pad = n_leaves * leaf_size - m
-    tlo = np.concatenate([tri.min(axis=1), np.full((pad, 3), np.inf)])
-    thi = np.concatenate([tri.max(axis=1), np.full((pad, 3), -np.inf)])
-    lo[n_leaves:] = tlo.reshape(n_leaves, leaf_size, 3).min(axis=1)
-    hi[n_leaves:] = thi.reshape(n_leaves, leaf_size, 3).max(axis=1)
+    a, b, c = (np.take(vertices, faces_sorted[:, k], axis=0) for k in range(3))
+    tlo = np.full((n_leaves * leaf_size, 3), np.inf)
+    thi = np.full((n_leaves * leaf_size, 3), -np.inf)
+    np.minimum(np.minimum(a, b, out=tlo[:m]), c, out=tlo[:m])
+    np.maximum(np.maximum(a, b, out=thi[:m]), c, out=thi[:m])
+    leaf_lo, leaf_hi = lo[n_leaves:], hi[n_leaves:]
+    leaf_lo[:], leaf_hi[:] = tlo[0::leaf_size], thi[0::leaf_size]
+    for j in range(1, leaf_size):
+        np.minimum(leaf_lo, tlo[j::leaf_size], out=leaf_lo)
+        np.maximum(leaf_hi, thi[j::leaf_size], out=leaf_hi)
     size = n_leaves // 2
     while size >= 1:
-        lo[size : 2 * size] = lo[2 * size : 4 * size].reshape(size, 2, 3).min(axis=1)
-        hi[size : 2 * size] = hi[2 * size : 4 * size].reshape(size, 2, 3).max(axis=1)
+        np.minimum(lo[2 * size : 4 * size : 2], lo[2 * size + 1 : 4 * size : 2], out=lo[size : 2 * size])
+        np.maximum(hi[2 * size : 4 * size : 2], hi[2 * size + 1 : 4 * size : 2], out=hi[size : 2 * size])
         size //= 2
 
 
@@ -193,7 +202,7 @@ def _triangles_numpy(vertices, faces, o, d):
     q = np.cross(s, e1)
     v = (q @ d) * inv_det
     t = np.einsum("ij,ij->i", e2, q) * inv_det
-    ok &= (u >= 0) & (u <= 1) & (v >= 0) & (u + v <= 1) & (t >= 0)
+    ok &= (u >= -EDGE_TOL) & (u <= 1 + EDGE_TOL) & (v >= -EDGE_TOL) & (u + v <= 1 + EDGE_TOL) & (t >= 0)
     return np.where(ok, t, np.inf), u, v
 
 
@@ -233,21 +242,18 @@ def _make_numba_kernels(numba):
     def refit(vertices, faces_sorted, n_leaves, leaf_size, lo, hi):
         m = faces_sorted.shape[0]
         for leaf in range(n_leaves):
-            node = n_leaves + leaf
-            for a in range(3):
-                lo[node, a] = np.inf
-                hi[node, a] = -np.inf
+            x0 = y0 = z0 = np.inf
+            x1 = y1 = z1 = -np.inf
             start = leaf * leaf_size
-            stop = min(start + leaf_size, m)
-            for k in range(start, stop):
+            for k in range(start, min(start + leaf_size, m)):
                 for c in range(3):
                     vi = faces_sorted[k, c]
-                    for a in range(3):
-                        x = vertices[vi, a]
-                        if x < lo[node, a]:
-                            lo[node, a] = x
-                        if x > hi[node, a]:
-                            hi[node, a] = x
+                    x, y, z = vertices[vi, 0], vertices[vi, 1], vertices[vi, 2]
+                    x0, y0, z0 = min(x0, x), min(y0, y), min(z0, z)
+                    x1, y1, z1 = max(x1, x), max(y1, y), max(z1, z)
+            node = n_leaves + leaf
+            lo[node, 0], lo[node, 1], lo[node, 2] = x0, y0, z0
+            hi[node, 0], hi[node, 1], hi[node, 2] = x1, y1, z1
         for node in range(n_leaves - 1, 0, -1):
             for a in range(3):
                 lo[node, a] = min(lo[2 * node, a], lo[2 * node + 1, a])
@@ -315,13 +321,13 @@ def _make_numba_kernels(numba):
                     sy = o[1] - vertices[i0, 1]
                     sz = o[2] - vertices[i0, 2]
                     u = (sx * px + sy * py + sz * pz) * inv_det
-                    if u < 0.0 or u > 1.0:
+                    if u < -EDGE_TOL or u > 1.0 + EDGE_TOL:
                         continue
                     qx = sy * e1z - sz * e1y
                     qy = sz * e1x - sx * e1z
                     qz = sx * e1y - sy * e1x
                     v = (d[0] * qx + d[1] * qy + d[2] * qz) * inv_det
-                    if v < 0.0 or u + v > 1.0:
+                    if v < -EDGE_TOL or u + v > 1.0 + EDGE_TOL:
                         continue
                     t = (e2x * qx + e2y * qy + e2z * qz) * inv_det
                     if t >= 0.0 and t < best_t:
