@@ -1,0 +1,192 @@
+"""Mouse drag -> brush keyword arguments (no OpenGL).
+
+Each function turns a drag from window point ``start`` to window point ``current`` (pyglet
+coordinates: origin bottom-left, +y up, see :mod:`viewer.camera`) into the keyword arguments of
+one brush, as a JSON-ready dict with the registry name under ``"kind"``::
+
+    params = gesture.grab(camera, center, radius, start, current, width, height)
+    kind = params.pop("kind")
+    brush = registry.lookup(kind)(**params)
+
+``center`` is the picked surface point (3,) float64 and ``radius`` the brush radius in world
+units.  A drag is measured from the press, not from the previous motion event: the app
+re-applies the whole drag to the positions it had when the button went down.
+
+Rules (all rates are keyword-only and have these defaults):
+
+* grab: ``move`` is the world displacement of the cursor in the plane through ``center``
+  perpendicular to the view axis, so the grabbed point stays under the cursor.
+* twist: ``degrees = degrees_per_pixel * dx`` (horizontal drag, 0.5 degree per pixel) about
+  ``axis`` = the view axis (pointing into the screen) or, with ``normal=``, the surface normal
+  turned to point into the screen.  With the right-hand rule about an axis pointing into the
+  screen, dragging right turns the surface clockwise on screen, like a dial gripped at its top.
+* scale: ``factor = exp(per_pixel * dy)`` (vertical drag, 0.005 per pixel): up grows.
+* pinch: ``gradient = strength * (d d^T - I/3)`` with ``strength = per_pixel * |drag|``
+  (0.002 per pixel) and ``d`` the unit world direction of the drag on screen
+  (``dx * right + dy * up``); symmetric and traceless, it stretches along ``d`` and narrows
+  across it; ``invert=True`` negates it (narrows along ``d``).
+* radius: each wheel step multiplies the radius by 1.1 (:func:`wheel_radius`).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+__all__ = [
+    "grab", "twist", "scale", "pinch", "drag_params", "plane_point",
+    "wheel_radius", "radius_from_pixels", "pixels_from_radius", "KINDS",
+]
+
+KINDS = ("grab", "twist", "scale", "pinch")
+
+
+def _vector3(value, name):
+    v = np.asarray(value, dtype=np.float64)
+    if v.shape != (3,) or not np.all(np.isfinite(v)):
+        raise ValueError(f"{name}: must be a finite (3,) vector, got shape {v.shape}")
+    return v
+
+
+def _pixel(value, name):
+    p = np.asarray(value, dtype=np.float64)
+    if p.shape != (2,) or not np.all(np.isfinite(p)):
+        raise ValueError(f"{name}: must be a finite (x, y) window point, got shape {p.shape}")
+    return p
+
+
+def _positive(value, name):
+    v = float(value)
+    if not (math.isfinite(v) and v > 0):
+        raise ValueError(f"{name}: must be a finite number > 0, got {value!r}")
+    return v
+
+
+def _finite(value, name):
+    v = float(value)
+    if not math.isfinite(v):
+        raise ValueError(f"{name}: must be finite, got {value!r}")
+    return v
+
+
+def _base(kind, center, radius):
+    return {"kind": kind, "center": _vector3(center, "center").tolist(), "radius": _positive(radius, "radius")}
+
+
+def plane_point(camera, px, py, width, height, anchor):
+    """Where the eye ray through window point ``(px, py)`` meets the plane through ``anchor``
+    perpendicular to the view axis.  anchor : (3,) float64; returns (3,) float64."""
+    anchor = _vector3(anchor, "anchor")
+    origin, direction = camera.ray(px, py, width, height)
+    axis = camera.view_axis()
+    # direction . axis >= cos(half the diagonal field of view) > 0, so the ray always meets it.
+    t = float((anchor - origin) @ axis) / float(direction @ axis)
+    return origin + t * direction
+
+
+def grab(camera, center, radius, start, current, width, height):
+    """Grab: ``move`` (3,) is the cursor's world displacement in the view plane through ``center``."""
+    params = _base("grab", center, radius)
+    s, c = _pixel(start, "start"), _pixel(current, "current")
+    p0 = plane_point(camera, s[0], s[1], width, height, params["center"])
+    p1 = plane_point(camera, c[0], c[1], width, height, params["center"])
+    params["move"] = (p1 - p0).tolist()
+    return params
+
+
+def twist(camera, center, radius, start, current, *, normal=None, degrees_per_pixel=0.5):
+    """Twist: ``degrees = degrees_per_pixel * dx`` about the view axis, or about ``normal``
+    ((3,) float64, need not be unit) turned to point into the screen."""
+    params = _base("twist", center, radius)
+    dx = float(_pixel(current, "current")[0] - _pixel(start, "start")[0])
+    view = camera.view_axis()
+    if normal is None:
+        axis = view
+    else:
+        axis = _vector3(normal, "normal")
+        n = float(np.linalg.norm(axis))
+        if n == 0:
+            raise ValueError("normal: must not be zero")
+        axis = axis / n
+        if axis @ view < 0:
+            axis = -axis
+    params["axis"] = axis.tolist()
+    params["degrees"] = _finite(degrees_per_pixel, "degrees_per_pixel") * dx
+    return params
+
+
+def scale(center, radius, start, current, *, per_pixel=0.005):
+    """Scale: ``factor = exp(per_pixel * dy)``; dragging up grows, down shrinks."""
+    params = _base("scale", center, radius)
+    dy = float(_pixel(current, "current")[1] - _pixel(start, "start")[1])
+    params["factor"] = math.exp(_finite(per_pixel, "per_pixel") * dy)
+    return params
+
+
+def pinch(camera, center, radius, start, current, *, per_pixel=0.002, invert=False):
+    """Pinch: ``gradient`` (3, 3) ``= strength * (d d^T - I/3)``, ``d`` the drag's world direction.
+
+    strength = per_pixel * drag length in pixels (negated by ``invert``); a zero drag gives a
+    zero gradient.
+    """
+    params = _base("pinch", center, radius)
+    drag = _pixel(current, "current") - _pixel(start, "start")
+    length = float(np.hypot(*drag))
+    gradient = np.zeros((3, 3))
+    if length > 0:
+        d = drag[0] * camera.right() + drag[1] * camera.up()
+        d /= np.linalg.norm(d)
+        strength = _finite(per_pixel, "per_pixel") * length * (-1.0 if invert else 1.0)
+        gradient = strength * (np.outer(d, d) - np.eye(3) / 3)
+    params["gradient"] = gradient.tolist()
+    return params
+
+
+def drag_params(kind, camera, center, radius, start, current, width, height, *, normal=None, invert=False):
+    """Dispatch to :func:`grab`, :func:`twist`, :func:`scale` or :func:`pinch` with default rates.
+
+    ``normal`` is used by twist only (None: the view axis); ``invert`` by pinch only.
+    """
+    if kind == "grab":
+        return grab(camera, center, radius, start, current, width, height)
+    if kind == "twist":
+        return twist(camera, center, radius, start, current, normal=normal)
+    if kind == "scale":
+        return scale(center, radius, start, current)
+    if kind == "pinch":
+        return pinch(camera, center, radius, start, current, invert=invert)
+    raise ValueError(f"kind: must be one of {', '.join(KINDS)}, got {kind!r}")
+
+
+def wheel_radius(radius, steps, *, step=1.1, min_radius=None, max_radius=None):
+    """The radius after ``steps`` wheel clicks: ``radius * step ** steps``, then clamped.
+
+    Positive steps (wheel up in pyglet's ``scroll_y``) grow the radius.
+    """
+    r = _positive(radius, "radius") * _positive(step, "step") ** _finite(steps, "steps")
+    if min_radius is not None:
+        r = max(r, _positive(min_radius, "min_radius"))
+    if max_radius is not None:
+        r = min(r, _positive(max_radius, "max_radius"))
+    return r
+
+
+def _depth(camera, center):
+    depth = float((_vector3(center, "center") - camera.eye()) @ camera.view_axis())
+    if depth <= 0:
+        raise ValueError("center: must lie in front of the camera")
+    return depth
+
+
+def radius_from_pixels(camera, center, pixels, height):
+    """World radius that covers ``pixels`` window units on screen at the depth of ``center``."""
+    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / _positive(height, "height")
+    return _positive(pixels, "pixels") * per_pixel
+
+
+def pixels_from_radius(camera, center, radius, height):
+    """Window units covered by the world length ``radius`` at the depth of ``center``
+    (for drawing the brush outline); inverse of :func:`radius_from_pixels`."""
+    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / _positive(height, "height")
+    return _positive(radius, "radius") / per_pixel
