@@ -417,6 +417,7 @@ def write_obj(path, text):
     try:
         with os.fdopen(fd, "w", encoding="ascii", newline="\n") as fh:
             fh.write(text)
+        os.chmod(tmp, 0o644)  # mkstemp makes 0600; a model is meant to be read by all
         os.replace(tmp, path)
     except BaseException:
         os.unlink(tmp)
