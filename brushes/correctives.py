@@ -1,0 +1,239 @@
+"""Corrective shapes (morph targets): per-vertex offsets from a rest mesh to a posed one.
+
+Two outputs, chosen by the file extension given to :func:`write_delta`:
+
+``.npz``
+    pliant's own small layout (numpy ``savez``, written atomically):
+
+    ========== ============ =====================================================
+    key        dtype        meaning
+    ========== ============ =====================================================
+    format     str          ``"pliant-corrective"``
+    version    int64        ``1``
+    deltas     float32      (n, 3) posed minus rest positions
+    count      int64        n, the rest mesh's vertex count
+    checksum   str          hex SHA-256 of the rest positions as (n, 3) float64,
+                            little-endian, C order
+    ========== ============ =====================================================
+
+    :func:`apply_delta` adds the deltas to a rest mesh after checking its vertex count and
+    checksum, so offsets are never applied to a different mesh or vertex order.
+``.glb`` / ``.gltf``
+    A glTF 2.0 file holding the rest mesh (POSITION, triangle indices and TEXCOORD_0 when the
+    rest has per-vertex texture coordinates) with the posed shape as one morph target: target
+    POSITION holds the offsets, ``mesh.extras.targetNames`` names it and ``mesh.weights`` gives
+    its default weight. Every POSITION accessor has ``min``/``max``. A ``.gltf`` embeds its
+    buffer as a base64 data URI, so the output is a single file written atomically.
+"""
+
+from __future__ import annotations
+
+import base64
+import hashlib
+import io
+import json
+import os
+import struct
+
+import numpy as np
+
+from .atomic import atomic_write
+from .meshio import MeshDoc
+
+__all__ = ["write_delta", "apply_delta", "rest_checksum", "FORMAT_TAG", "FORMAT_VERSION"]
+
+FORMAT_TAG = "pliant-corrective"
+FORMAT_VERSION = 1
+
+
+def rest_checksum(rest_vertices) -> str:
+    """Hex SHA-256 of rest positions as (n, 3) float64, little-endian, C order.
+
+    Parameters
+    ----------
+    rest_vertices : (n, 3) float
+    """
+    v = _positions(rest_vertices, "rest_vertices")
+    return hashlib.sha256(np.ascontiguousarray(v, dtype="<f8").tobytes()).hexdigest()
+
+
+def _positions(a, name, n=None):
+    v = np.asarray(a, dtype=np.float64)
+    if v.ndim != 2 or v.shape[1] != 3:
+        raise ValueError(f"{name}: must have shape (n, 3), got {v.shape}")
+    if n is not None and len(v) != n:
+        raise ValueError(f"{name}: has {len(v)} vertices but the rest mesh has {n}")
+    if not np.all(np.isfinite(v)):
+        raise ValueError(f"{name}: must be finite (found NaN or infinity)")
+    return v
+
+
+def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective",
+                weight: float = 0.0) -> None:
+    """Write the corrective shape taking ``rest`` to ``posed_vertices``.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        ``.npz``, ``.glb`` or ``.gltf``.
+    rest : MeshDoc
+        The rest mesh (its ``vertices``, ``faces`` and ``uv`` are used).
+    posed_vertices : (n, 3) float
+        Posed positions in the rest's vertex order.
+    name : str, keyword-only
+        Morph target name (glTF ``mesh.extras.targetNames``; stored in the npz as well).
+    weight : float, keyword-only
+        Default morph weight written to glTF ``mesh.weights`` (0 shows the rest shape).
+
+    Raises
+    ------
+    ValueError
+        Vertex counts differ, positions are not finite, or the extension is unknown.
+    """
+    if not isinstance(rest, MeshDoc):
+        raise ValueError(f"rest: must be a MeshDoc, got {type(rest).__name__}")
+    r = _positions(rest.vertices, "rest")
+    p = _positions(posed_vertices, "posed_vertices", len(r))
+    if not isinstance(name, str) or not name:
+        raise ValueError("name: must be a non-empty string")
+    weight = float(weight)
+    if not np.isfinite(weight):
+        raise ValueError("weight: must be finite")
+    ext = os.path.splitext(os.fspath(path))[1].lower()
+    deltas = (p - r).astype(np.float32)
+    if ext == ".npz":
+        buf = io.BytesIO()
+        np.savez(
+            buf,
+            format=np.array(FORMAT_TAG),
+            version=np.array(FORMAT_VERSION, np.int64),
+            deltas=deltas,
+            count=np.array(len(r), np.int64),
+            checksum=np.array(rest_checksum(r)),
+            name=np.array(name),
+        )
+        data = buf.getvalue()
+    elif ext in (".glb", ".gltf"):
+        data = _gltf_bytes(r, rest.faces, rest.uv, deltas, name, weight, glb=ext == ".glb")
+    else:
+        raise ValueError(f"path: extension must be .npz, .glb or .gltf, got {ext or 'none'!r}")
+    with atomic_write(path) as f:
+        f.write(data)
+
+
+def apply_delta(rest_vertices, path) -> np.ndarray:
+    """Add the corrective shape stored at ``path`` (``.npz``) to ``rest_vertices``.
+
+    Parameters
+    ----------
+    rest_vertices : (n, 3) float
+        Must be the same rest positions the file was made from.
+    path : str or os.PathLike
+
+    Returns
+    -------
+    (n, 3) float64
+        ``rest_vertices + deltas``.
+
+    Raises
+    ------
+    ValueError
+        Not a pliant corrective file, or a different vertex count or checksum.
+    """
+    r = _positions(rest_vertices, "rest_vertices")
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            fields = {k: z[k] for k in z.files}
+    except FileNotFoundError:
+        raise ValueError(f"path: {path}: no such file") from None
+    except (OSError, ValueError, EOFError) as exc:
+        raise ValueError(f"path: {path}: not a corrective .npz file ({exc})") from None
+    if str(fields.get("format", "")) != FORMAT_TAG:
+        raise ValueError(f"path: {path}: not a pliant corrective file (format tag missing)")
+    version = int(fields.get("version", -1))
+    if version != FORMAT_VERSION:
+        raise ValueError(f"path: {path}: corrective format version {version} is not supported")
+    count = int(fields["count"])
+    deltas = np.asarray(fields["deltas"])
+    if deltas.shape != (count, 3):
+        raise ValueError(f"path: {path}: deltas have shape {deltas.shape}, expected ({count}, 3)")
+    if len(r) != count:
+        raise ValueError(
+            f"rest_vertices: has {len(r)} vertices but {path} was made for {count}"
+        )
+    if rest_checksum(r) != str(fields["checksum"]):
+        raise ValueError(
+            f"rest_vertices: checksum differs from the rest mesh {path} was made from "
+            "(different positions or vertex order)"
+        )
+    return r + deltas.astype(np.float64)
+
+
+# --------------------------------------------------------------------------- glTF writer
+
+_ARRAY_BUFFER = 34962
+_ELEMENT_ARRAY_BUFFER = 34963
+_FLOAT = 5126
+_UINT16 = 5123
+_UINT32 = 5125
+
+
+def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
+    """glTF 2.0 JSON (+ GLB container) for one mesh with one morph target."""
+    pos = rest.astype(np.float32)
+    blobs, views, accessors = [], [], []
+    offset = 0
+
+    def add(arr, target, kind, ctype, bounds):
+        nonlocal offset
+        raw = np.ascontiguousarray(arr).tobytes()
+        views.append({"buffer": 0, "byteOffset": offset, "byteLength": len(raw), "target": target})
+        acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)),
+               "type": kind}
+        if bounds:  # exact float32 bounds, as the glTF 2.0 spec requires for POSITION
+            acc["min"] = [float(x) for x in arr.min(axis=0)]
+            acc["max"] = [float(x) for x in arr.max(axis=0)]
+        accessors.append(acc)
+        raw += b"\0" * (-len(raw) % 4)
+        blobs.append(raw)
+        offset += len(raw)
+        return len(accessors) - 1
+
+    attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
+    if uv is not None:
+        attributes["TEXCOORD_0"] = add(np.asarray(uv, np.float32), _ARRAY_BUFFER, "VEC2", _FLOAT, False)
+    target = {"POSITION": add(deltas, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
+    primitive = {"attributes": attributes, "targets": [target]}
+    faces = np.asarray(faces, np.int64).reshape(-1, 3)
+    if len(faces):
+        if len(pos) <= 65535:
+            idx = faces.astype(np.uint16).ravel()
+            ctype = _UINT16
+        else:
+            idx = faces.astype(np.uint32).ravel()
+            ctype = _UINT32
+        primitive["indices"] = add(idx, _ELEMENT_ARRAY_BUFFER, "SCALAR", ctype, False)
+        primitive["mode"] = 4
+    else:
+        primitive["mode"] = 0  # points
+    binary = b"".join(blobs)
+    gltf = {
+        "asset": {"version": "2.0", "generator": "pliant corrective shape"},
+        "scene": 0,
+        "scenes": [{"nodes": [0]}],
+        "nodes": [{"name": name, "mesh": 0}],
+        "meshes": [{"name": name, "primitives": [primitive], "weights": [weight],
+                    "extras": {"targetNames": [name]}}],
+        "accessors": accessors,
+        "bufferViews": views,
+        "buffers": [{"byteLength": len(binary)}],
+    }
+    if not glb:
+        gltf["buffers"][0]["uri"] = ("data:application/octet-stream;base64,"
+                                     + base64.b64encode(binary).decode("ascii"))
+        return (json.dumps(gltf, indent=1) + "\n").encode("utf-8")
+    jbytes = json.dumps(gltf, separators=(",", ":")).encode("utf-8")
+    jbytes += b" " * (-len(jbytes) % 4)
+    chunks = (struct.pack("<II", len(jbytes), 0x4E4F534A) + jbytes
+              + struct.pack("<II", len(binary), 0x004E4942) + binary)
+    return struct.pack("<III", 0x46546C67, 2, 12 + len(chunks)) + chunks
