@@ -214,21 +214,35 @@ def _split_lines(data: bytes):
     return buf, starts, ends - cr
 
 
-def _gather(buf, starts, ends):
-    """Concatenate ``buf[starts[i]:ends[i]]`` each followed by ``\\n``.
+def _gather(buf, starts, ends, lines):
+    """Concatenate the byte ranges ``buf[starts[i]:ends[i]]`` separated by blanks.
 
-    Returns (blob uint8, offsets (k,) of each line in the blob).
+    ``lines`` (k,) are the ranges' line numbers: runs of consecutive lines are copied as one
+    slice, and the bytes between two ranges of a run (line break, next keyword) are blanked.
+    Returns (blob uint8, offsets (k,) of each range in the blob).
     """
-    lens = ends - starts
-    offsets = np.cumsum(lens + 1) - (lens + 1)
-    if len(starts) == 0:
+    n = len(starts)
+    offsets = np.zeros(n, np.int64)
+    if n == 0:
         return np.zeros(0, np.uint8), offsets
-    mark = np.zeros(len(buf) + 1, np.int8)
-    mark[starts] += 1
-    mark[ends + 1] -= 1
-    inside = np.cumsum(mark[:-1], dtype=np.int8).view(bool)
-    blob = buf[inside]
-    blob[offsets + lens] = 10
+    brk = np.flatnonzero(np.diff(lines) != 1) + 1
+    run_a = np.concatenate(([0], brk)).tolist()
+    run_b = np.concatenate((brk, [n])).tolist()
+    pieces = []
+    base = 0
+    blank = np.full(1, 32, np.uint8)
+    for a, b in zip(run_a, run_b):
+        seg = buf[starts[a] : ends[b - 1]]
+        offsets[a:b] = starts[a:b] - starts[a] + base
+        pieces.append(seg)
+        pieces.append(blank)
+        base += len(seg) + 1
+    blob = np.concatenate(pieces)
+    gap_from = offsets[:-1] + (ends[:-1] - starts[:-1])
+    gap_len = offsets[1:] - gap_from
+    if len(gap_len):
+        pos = np.repeat(gap_from - np.cumsum(gap_len) + gap_len, gap_len) + np.arange(int(gap_len.sum()))
+        blob[pos] = 32
     return blob, offsets
 
 
@@ -240,16 +254,15 @@ class _Tokens(NamedTuple):
     blob: np.ndarray  # blob with comments blanked
 
 
-def _tokens(blob, offsets, lens) -> _Tokens:
-    """Whitespace-separated tokens of each line of a blob, with ``#`` comments blanked."""
+def _tokens(blob, offsets) -> _Tokens:
+    """Whitespace-separated tokens of each range of a blob, with ``#`` comments blanked."""
     hs = blob == 35
     if hs.any():
         c = np.cumsum(hs, dtype=np.int64)
-        lineid = np.repeat(np.arange(len(offsets)), lens + 1)
+        lineid = np.searchsorted(offsets, np.arange(len(blob)), side="right") - 1
         before = c[offsets] - hs[offsets]
-        blank = ((c - before[lineid]) > 0) & (blob != 10)
         blob = blob.copy()
-        blob[blank] = 32
+        blob[(c - before[lineid]) > 0] = 32
     ws = blob <= 32
     prev = np.empty_like(ws)
     nxt = np.empty_like(ws)
@@ -377,8 +390,8 @@ def _obj_floats(buf, kw, ends, mask, skip, path, what, minimum):
     """Parse the numbers of the lines in ``mask`` (keyword of length ``skip`` dropped)."""
     idx = np.flatnonzero(mask)
     s, e = kw[idx] + skip, ends[idx]
-    blob, off = _gather(buf, s, e)
-    tok = _tokens(blob, off, e - s)
+    blob, off = _gather(buf, s, e, idx)
+    tok = _tokens(blob, off)
     short = tok.counts < minimum
     if short.any():
         line = int(idx[np.flatnonzero(short)[0]]) + 1
@@ -435,28 +448,34 @@ def _load_obj(path, data: bytes) -> MeshDoc:
     normals = "absent" if vn_count == 0 else "kept"
     if len(fidx):
         s, e = kw[fidx] + 1, ends[fidx]
-        blob, off = _gather(buf, s, e)
-        tok = _tokens(blob, off, e - s)
+        blob, off = _gather(buf, s, e, fidx)
+        tok = _tokens(blob, off)
         if np.any(tok.counts < 3):
             line = int(fidx[np.flatnonzero(tok.counts < 3)[0]]) + 1
             raise MeshError(f"{path}: line {line}: a face needs at least 3 corners")
         b = tok.blob
         ws = b <= 32
         slash = b == 47
-        # component number of each byte within its token (0: v, 1: vt, 2: vn)
-        mark = np.zeros(len(b) + 1, np.int64)
-        mark[tok.starts] = 1
-        tokid = np.cumsum(mark[:-1]) - 1
-        cs = np.cumsum(slash, dtype=np.int64)
-        comp = cs - (cs[tok.starts] - slash[tok.starts])[np.maximum(tokid, 0)]
+        # component number of each byte within its token (0: v, 1: vt, 2: vn): slashes
+        # counted since the last blank (int32 and bool arrays keep memory low on big files)
+        cs = np.cumsum(slash, dtype=np.int32)
+        comp = cs - np.maximum.accumulate(np.where(ws, cs, np.int32(0)))
+        del cs
         digit = ~ws & ~slash
         ncorner = len(tok.starts)
         corner_line = np.repeat(np.arange(len(fidx)), tok.counts)
 
         def component(k, before_mask):
-            present = np.add.reduceat((digit & (comp == k)).astype(np.int64), tok.starts) > 0 \
-                if ncorner else np.zeros(0, bool)
-            sel = np.where(digit & (comp == k), b, np.uint8(32))
+            inside = digit & (comp == k)
+            # tokens that have this component: where a run of its digits begins
+            begin = inside.copy()
+            begin[1:] &= ~inside[:-1]
+            owner = np.searchsorted(tok.starts, np.flatnonzero(begin), side="right") - 1
+            present = np.zeros(ncorner, bool)
+            present[owner] = True
+            if len(owner) != int(present.sum()):
+                raise MeshError(f"{path}: malformed face corner")
+            sel = np.where(inside, b, np.uint8(32))
             vals = _parse_numbers(sel, int(present.sum()), np.int64, f"{path}: 'f' line")
             count_before = np.searchsorted(np.flatnonzero(before_mask), fidx)[corner_line[present]]
             return present, vals, count_before

@@ -605,3 +605,28 @@ def test_from_arrays_writes_any_format(tmp_path, ext):
     save_mesh(doc, out)
     ref = trimesh.load(out, process=False, force="mesh")
     np.testing.assert_allclose(ref.vertices[ref.faces], box.vertices[box.faces], atol=1e-6)
+
+
+def test_obj_comments_weights_and_indented_lines(tmp_path):
+    text = "v 0 0 0 # origin\n  v 1 0 0 0.5\nv 0 1 0\n\tf 1 2 3 # one face\n"
+    p = tmp_path / "c.obj"
+    _write(p, text)
+    doc = load_mesh(p)
+    np.testing.assert_array_equal(doc.vertices, [[0, 0, 0], [1, 0, 0], [0, 1, 0]])
+    np.testing.assert_array_equal(doc.faces, [[0, 1, 2]])
+    out = tmp_path / "o.obj"
+    save_mesh(doc, out, doc.vertices + 1)
+    # hand-written expectation: only the v lines change; their trailing text is kept
+    assert out.read_text() == "v 1.0 1.0 1.0 # origin\nv 2.0 1.0 1.0 0.5\nv 1.0 2.0 1.0\n\tf 1 2 3 # one face\n"
+
+
+def test_bench_synthetic_obj_and_ratio(tmp_path):
+    from brushes.bench_io import bench_obj, synthetic_obj
+
+    p = tmp_path / "g.obj"
+    nv, nf = synthetic_obj(p, 400)
+    ref = trimesh.load(p, process=False, force="mesh")  # independent reader
+    assert (nv, nf) == (400, 2 * 19 * 19) and len(ref.faces) == nf
+    np.testing.assert_allclose(load_mesh(p).vertices, ref.vertices, atol=0)
+    r = bench_obj(400)
+    assert r["vertices"] == 400 and r["ratio"] == r["ours_s"] / r["trimesh_s"]
