@@ -26,12 +26,14 @@ PLY
     comes first and has only scalar properties (the usual layout), writing patches ``x y z`` (and
     ``nx ny nz``, recomputed) in place and keeps every other byte; otherwise it falls back to
     trimesh's exporter in the source's encoding, which keeps positions, faces and colours only.
+    (trimesh's binary PLY reader needs all faces of one size; other files raise MeshError.)
 STL
     STL stores each triangle's corners separately. Here the vertices are the distinct corner
     positions (merged by exact equality), numbered in order of first appearance while reading
     the facets in file order; ``faces`` are the facets in file order. Writing emits one facet
     per face in the same order with recomputed facet normals, binary or ASCII as the source was,
-    keeping a binary file's 80-byte header and per-facet attribute bytes. Reading the written
+    keeping a binary file's 80-byte header and per-facet attribute bytes (an ASCII file with
+    several solids is written back as one solid, named after the first). Reading the written
     file again gives the same vertex order, unless posing made two distinct vertices coincide.
 OFF
     Read through trimesh (``process=False``); writing rewrites only the vertex lines (keeping
