@@ -58,7 +58,8 @@ def describe(exc: BaseException) -> str:
         text = str(exc) or type(exc).__name__
     if not isinstance(exc, (ValueError, OSError)):
         text = f"{type(exc).__name__}: {text}"
-    return " ".join(text.split())
+    lines = [" ".join(line.split()) for line in text.splitlines()]
+    return "; ".join(line for line in lines if line)
 
 
 def plan(mesh_paths: Iterable[str | os.PathLike], out_dir: str | os.PathLike, *,
@@ -199,7 +200,7 @@ def _run_dask(recipe, tasks, address, on_done) -> list[Outcome]:
         raise ClusterUnavailable(
             "--scheduler needs dask.distributed: pip install pliant[cluster]") from exc
     try:
-        client = Client(address, timeout="10s", set_as_default=False)
+        client = Client(address, set_as_default=False)  # connect timeout: dask config
     except (OSError, TimeoutError, ValueError) as exc:
         raise ClusterUnavailable(f"--scheduler: cannot reach {address}: {describe(exc)}") from exc
     futures = []

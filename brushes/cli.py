@@ -258,6 +258,23 @@ def _check_outputs(outputs: list[tuple[str, str | None]], inputs: list[str], *,
                 raise CliError(f"{opt_b}: {b} is also the {opt_a} output; give distinct names")
 
 
+DELTA_FORMATS = ("npz", "glb", "gltf")
+
+
+def _mesh_formats() -> tuple[str, ...]:
+    from brushes.meshio import FORMATS
+
+    return tuple(FORMATS)
+
+
+def _check_suffix(option: str, path: str, formats) -> None:
+    suffix = Path(path).suffix.lower().lstrip(".")
+    if suffix not in formats:
+        raise CliError(f"{option}: {path}: unknown format "
+                       f"{('.' + suffix) if suffix else '(no extension)'}; use one of "
+                       + ", ".join(f".{f}" for f in formats))
+
+
 def _same_topology(rest, posed, rest_name: str, posed_name: str) -> None:
     import numpy as np
 
@@ -285,11 +302,24 @@ def cmd_apply(args) -> int:
     _existing(args.mesh, "MESH")
     _check_outputs([("--out", args.out), ("--delta", args.delta)], [args.recipe, args.mesh],
                    force=args.force)
+    _check_suffix("--out", args.out, _mesh_formats())
+    if args.delta:
+        _check_suffix("--delta", args.delta, DELTA_FORMATS)
     recipe = load_recipe(args.recipe)
     doc = load_mesh(args.mesh)
     posed = recipe.apply(doc.vertices, groups=_groups(doc))
-    save_mesh(doc, args.out, vertices=posed)
-    print(f"posed: {args.out}")
+    target_format = Path(args.out).suffix.lower().lstrip(".")
+    if doc.format is not None and target_format != doc.format:
+        # Another format cannot carry the source's structure: keep positions, faces and
+        # per-vertex texture coordinates.
+        from brushes.meshio import MeshDoc
+
+        save_mesh(MeshDoc.from_arrays(posed, doc.faces, uv=doc.uv), args.out)
+        print(f"posed: {args.out} (converted from {doc.format.upper()}: positions, faces "
+              "and texture coordinates only)")
+    else:
+        save_mesh(doc, args.out, vertices=posed)
+        print(f"posed: {args.out}")
     if args.delta:
         from brushes.correctives import write_delta
 
@@ -341,6 +371,7 @@ def cmd_delta(args) -> int:
     _existing(args.rest, "REST")
     _existing(args.posed, "POSED")
     _check_outputs([("--out", args.out)], [args.rest, args.posed], force=args.force)
+    _check_suffix("--out", args.out, DELTA_FORMATS)
     rest = load_mesh(args.rest)
     posed = load_mesh(args.posed)
     _same_topology(rest, posed, args.rest, args.posed)
@@ -410,23 +441,31 @@ def cmd_snapshot(args) -> int:
     from brushes.meshio import load_mesh
 
     _existing(args.mesh, "MESH")
-    inputs = [args.mesh] + ([args.recipe] if args.recipe else [])
+    inputs = [args.mesh]
     if args.recipe:
         _existing(args.recipe, "--recipe")
+        inputs.append(args.recipe)
     _check_outputs([("--out", args.out)], inputs, force=args.force)
-    if Path(args.out).suffix.lower() != ".png":
-        raise CliError(f"--out: {args.out}: expected a .png file name")
-    doc = load_mesh(args.mesh)
-    vertices = doc.vertices
-    if args.recipe:
-        from brushes.recipe import load_recipe
-
-        vertices = load_recipe(args.recipe).apply(vertices, groups=_groups(doc))
+    _check_suffix("--out", args.out, ("png",))
     try:
-        from viewer.snapshot import snapshot
+        from viewer.snapshot import SnapshotError, parse_view, snapshot
     except ImportError as exc:
         raise CliError(f"snapshots cannot be rendered: {exc}") from exc
-    snapshot(vertices, doc.faces, args.out, size=args.size, view=args.view)
+    parse_view(args.view)                        # a bad --view fails before any work
+    doc = load_mesh(args.mesh)
+    vertices, magnitude = doc.vertices, None
+    if args.recipe:
+        import numpy as np
+
+        from brushes.recipe import load_recipe
+
+        vertices = load_recipe(args.recipe).apply(doc.vertices, groups=_groups(doc))
+        magnitude = np.linalg.norm(vertices - doc.vertices, axis=1)
+    try:
+        snapshot(vertices, doc.faces, args.out, size=args.size, view=args.view,
+                 magnitude=magnitude)
+    except SnapshotError as exc:
+        raise CliError(str(exc)) from exc
     print(f"snapshot: {args.out}")
     return EXIT_OK
 
