@@ -85,7 +85,7 @@ def vertex_normals_operator(faces, n_vertices):
     return op
 
 
-def vertex_normals(op, vertices, faces, *, out=None):
+def vertex_normals(op, vertices, faces, *, out=None, normalize=True):
     """Unit area-weighted vertex normals.
 
     ``N_i = normalise( sum over faces f at i of (b_f - a_f) x (c_f - a_f) )``, the sum taken by
@@ -102,6 +102,9 @@ def vertex_normals(op, vertices, faces, *, out=None):
         Triangles.
     out : (n, 3) array of the same dtype, optional
         Written in place and returned.
+    normalize : bool, keyword-only
+        False leaves the area-weighted sums unnormalised (the mesh shader normalises per
+        vertex on the GPU, which saves the CPU a pass over every vertex while dragging).
 
     Returns
     -------
@@ -132,14 +135,18 @@ def vertex_normals(op, vertices, faces, *, out=None):
     np.multiply(e1[:, 0], e2[:, 1], out=cross[:, 2])
     cross[:, 2] -= e1[:, 1] * e2[:, 0]
     summed = np.asarray(op @ cross, dtype=vertices.dtype)
-    length = np.sqrt(np.einsum("ij,ij->i", summed, summed))
-    scale = np.zeros_like(length)
-    np.divide(1.0, length, out=scale, where=length > 0)
     if out is None:
         out = summed
     elif out.shape != summed.shape or out.dtype != summed.dtype:
         raise ValueError(f"out: must be a {summed.dtype} array of shape {summed.shape}, "
                          f"got {out.dtype} {out.shape}")
+    if not normalize:
+        if out is not summed:
+            out[...] = summed
+        return out
+    length = np.sqrt(np.einsum("ij,ij->i", summed, summed))
+    scale = np.zeros_like(length)
+    np.divide(1.0, length, out=scale, where=length > 0)
     np.multiply(summed, scale[:, None], out=out)
     return out
 
@@ -201,8 +208,10 @@ out float v_hold;
 void main() {
     vec4 p = u_view * vec4(position, 1.0);
     v_position = p.xyz;
-    // The view matrix is a rigid motion, so its upper 3x3 maps normals too.
-    v_normal = mat3(u_view) * normal;
+    // Normals arrive unnormalised (area-weighted sums); a zero one stays zero. The view
+    // matrix is a rigid motion, so its upper 3x3 maps normals too.
+    float len = length(normal);
+    v_normal = mat3(u_view) * (len > 0.0 ? normal / len : normal);
     v_magnitude = magnitude;
     v_hold = hold;
     gl_Position = u_projection * p;
@@ -328,7 +337,8 @@ class MeshRenderer:
         faces = _check_faces(faces, len(vertices))
         self.n_vertices = len(vertices)
         self.n_faces = len(faces)
-        self.faces = np.ascontiguousarray(faces, dtype=np.int64)
+        # Column-major, so each corner column is contiguous for the gathers in vertex_normals.
+        self.faces = np.asfortranarray(faces, dtype=np.int64)
         self.normal_operator = vertex_normals_operator(self.faces, self.n_vertices)
         self.program = _program(MESH_VERTEX_SHADER,
                                 MESH_FRAGMENT_SHADER % {"palette": palette.glsl_constants()})
@@ -337,7 +347,7 @@ class MeshRenderer:
         self._normals = BufferObject(12 * n)
         self._magnitude = BufferObject(4 * n)
         self._hold = BufferObject(4 * n)
-        indices = np.ascontiguousarray(self.faces.reshape(-1), dtype=np.uint32)
+        indices = np.ascontiguousarray(self.faces, dtype=np.uint32).reshape(-1)
         self._indices = BufferObject(max(indices.nbytes, 4))
         self._indices.set_data_region(indices.ctypes.data, 0, indices.nbytes)
 
@@ -370,13 +380,15 @@ class MeshRenderer:
         vertices : (n, 3) float
             New positions, same n as at construction.
         normals : (n, 3) float, optional, keyword-only
-            Precomputed unit normals; computed with :func:`vertex_normals` when omitted.
+            Precomputed normals (any positive length); computed with :func:`vertex_normals`
+            when omitted.
         """
         vertices = _as_f32(vertices, (3,), "vertices")
         if len(vertices) != self.n_vertices:
             raise ValueError(f"vertices: must have {self.n_vertices} rows, got {len(vertices)}")
         if normals is None:
-            vertex_normals(self.normal_operator, vertices, self.faces, out=self.normals)
+            vertex_normals(self.normal_operator, vertices, self.faces, out=self.normals,
+                           normalize=False)
         else:
             self.normals[:] = _as_f32(normals, (3,), "normals")
         self._upload(self._positions, vertices)

@@ -55,7 +55,8 @@ import numpy as np
 from viewer import palette
 
 __all__ = ["snapshot", "render_pixels", "camera_for", "parse_view", "parse_size",
-           "SnapshotError", "ViewSpecError", "DEFAULT_VIEW", "VIEW_PRESETS", "INSTALL_HINT"]
+           "SnapshotError", "ViewSpecError", "DEFAULT_VIEW", "VIEW_PRESETS", "INSTALL_HINT",
+           "ensure_gl_context"]
 
 #: Defaults of the view specification (degrees, plain factor).
 DEFAULT_VIEW = {"yaw": 30.0, "pitch": 15.0, "zoom": 1.0, "fov": 40.0}
@@ -193,8 +194,13 @@ def camera_for(vertices, size, view, *, bounds=None):
     return camera
 
 
-def _gl_context():
-    """Make sure an OpenGL context is current; return a window to close afterwards, or None."""
+def ensure_gl_context():
+    """Make sure an OpenGL context is current; return a hidden window to close afterwards, or
+    None when a context was already current.
+
+    Switches pyglet to headless mode (EGL) if ``pyglet.gl`` was not imported yet. Raises
+    :class:`SnapshotError` with :data:`INSTALL_HINT` when no context can be made.
+    """
     import pyglet
     if "pyglet.gl" not in sys.modules:
         pyglet.options["headless"] = True
@@ -248,7 +254,7 @@ def render_pixels(vertices, faces, *, size=(800, 600), view=None, bounds=None, m
         raise ValueError(f"samples: must be >= 1, got {samples}")
     camera = camera_for(vertices, (width, height), view, bounds=bounds)
 
-    window = _gl_context()
+    window = ensure_gl_context()
     try:
         return _draw(vertices, faces, camera, width, height, magnitude, samples)
     finally:
