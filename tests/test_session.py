@@ -1,0 +1,227 @@
+"""viewer.session: the viewer's interaction state driven by events, without a window."""
+
+import math
+
+import numpy as np
+import pytest
+import trimesh
+
+from viewer import session as session_module
+from viewer.session import (BINDINGS, LEFT, MIDDLE, MOD_CTRL, MOD_SHIFT, RIGHT, Session, chord,
+                            mesh_volume)
+
+W, H = 640, 480
+
+
+@pytest.fixture
+def sphere():
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    return np.asarray(mesh.vertices), np.asarray(mesh.faces)
+
+
+@pytest.fixture
+def session(sphere, tmp_path):
+    return Session(*sphere, size=(W, H), out_dir=tmp_path)
+
+
+def test_chord_names_hand_cases():
+    assert chord("_1") == "1"
+    assert chord("NUM_4") == "4"
+    assert chord("COMMA") == ","
+    assert chord("Z", MOD_CTRL) == "Ctrl+Z"
+    assert chord("Z", MOD_CTRL | MOD_SHIFT) == "Ctrl+Shift+Z"
+    assert chord("DELETE", MOD_SHIFT) == "Shift+Delete"
+    assert chord("F1", 8 | 16) == "F1"  # Caps Lock and Num Lock bits are ignored
+    assert chord("S", 64) == "Ctrl+S"  # Command counts as Ctrl
+
+
+def test_bindings_table_is_consistent():
+    keys = [k for k, _, _ in BINDINGS]
+    assert len(keys) == len(set(keys)), "a key is bound twice"
+    mouse_only = {"stroke", "orbit", "pan", "zoom", "radius"}
+    for key, action, description in BINDINGS:
+        assert description
+        if action not in mouse_only:
+            assert hasattr(Session, f"_do_{action}"), action
+    # House rule: no bare letter keys (the big suites' single-letter transform shortcuts).
+    assert not [k for k in keys if len(k) == 1 and k.isalpha()]
+
+
+def test_mouse_and_modifier_values_match_pyglet():
+    # Compared in a subprocess-free way: pyglet.window.key/mouse import pyglet.window, which
+    # needs a display, so the values are checked against pyglet's source text instead.
+    import pathlib
+
+    import pyglet
+    root = pathlib.Path(pyglet.__file__).parent / "window"
+    mouse = (root / "mouse.py").read_text()
+    keys = (root / "key.py").read_text()
+    assert "LEFT = 1 << 0" in mouse and "MIDDLE = 1 << 1" in mouse and "RIGHT = 1 << 2" in mouse
+    assert (LEFT, MIDDLE, RIGHT) == (1, 2, 4)
+    assert "MOD_SHIFT       = 1 << 0" in keys and "MOD_CTRL        = 1 << 1" in keys
+    assert (MOD_SHIFT, MOD_CTRL) == (1, 2)
+
+
+def test_mesh_volume_matches_trimesh():
+    # Reference: trimesh.Trimesh.volume (its own mass-properties integration).
+    for mesh in (trimesh.creation.icosphere(subdivisions=3), trimesh.creation.box([1, 2, 3]),
+                 trimesh.creation.capsule(height=1.0, radius=0.3)):
+        assert mesh_volume(mesh.vertices, mesh.faces) == pytest.approx(mesh.volume, rel=1e-12)
+    # Hand case: the unit cube has volume 1 wherever it sits.
+    cube = trimesh.creation.box([1, 1, 1])
+    assert mesh_volume(cube.vertices + 5.0, cube.faces) == pytest.approx(1.0)
+    with pytest.raises(ValueError, match="^vertices"):
+        mesh_volume(np.zeros((3, 2)), [[0, 1, 2]])
+
+
+def test_key_settings(session):
+    r = session.radius
+    assert session.key("PERIOD") == "radius_up"
+    assert session.radius == pytest.approx(1.25 * r)
+    session.key("COMMA")
+    assert session.radius == pytest.approx(r)
+    assert session.falloff == "wide"
+    session.key("SEMICOLON")
+    session.key("SEMICOLON")
+    assert session.falloff == "tight"
+    session.key("SEMICOLON")
+    assert session.falloff == "wide"
+    # Poisson's ratio is per brush and stays within [0, 0.5].
+    session.key("_3")
+    assert session.tool == "scale" and session.status()["poisson"] == pytest.approx(0.3)
+    session.key("EQUAL")
+    assert session.poisson["scale"] == pytest.approx(0.35)
+    session.key("_1")
+    session.key("EQUAL")
+    assert session.poisson["grab"] == pytest.approx(0.5)
+    for _ in range(20):
+        session.key("MINUS")
+    assert session.poisson["grab"] == pytest.approx(0.0)
+    assert session.mirror_plane() is None
+    session.key("BACKSLASH")
+    normal, point = session.mirror_plane()
+    np.testing.assert_array_equal(normal, [1, 0, 0])
+    session.key("SLASH")
+    np.testing.assert_array_equal(session.mirror_plane()[0], [0, 1, 0])
+    assert session.key("F1") == "help_toggle" and session.show_help
+    assert session.key("F2") == "overlay_toggle" and session.show_magnitude
+    assert session.key("Q") is None  # unbound
+
+
+def test_camera_drags_and_wheel(session):
+    cam = session.camera
+    yaw, pitch = cam.yaw, cam.pitch
+    session.press(5, 5, RIGHT)
+    session.drag(15, 5, 10, 0, RIGHT)
+    session.release(15, 5, RIGHT)
+    # viewer.camera documents orbit(dx, dy): yaw decreases by 0.01 rad per window unit.
+    assert cam.yaw == pytest.approx((yaw - 0.1) % (2 * math.pi))
+    assert cam.pitch == pytest.approx(pitch)
+    target = cam.target.copy()
+    session.press(5, 5, RIGHT, MOD_CTRL)
+    session.drag(5, 25, 0, 20, RIGHT, MOD_CTRL)
+    session.release(5, 25, RIGHT, MOD_CTRL)
+    shift = cam.target - target
+    assert np.linalg.norm(shift) > 0
+    np.testing.assert_allclose(shift / np.linalg.norm(shift), -cam.up(), atol=1e-12)
+    d = cam.distance
+    session.scroll(0, 0, 2)
+    assert cam.distance == pytest.approx(d / 1.1**2)
+    r = session.radius
+    session.scroll(0, 0, 1, MOD_SHIFT)
+    assert session.radius == pytest.approx(1.1 * r) and cam.distance == pytest.approx(d / 1.1**2)
+
+
+def test_left_drag_off_the_model_orbits(session):
+    yaw = session.camera.yaw
+    assert not session.pick(2, 2).hit
+    session.press(2, 2, LEFT)
+    session.drag(12, 2, 10, 0, LEFT)
+    session.release(12, 2, LEFT)
+    assert session.camera.yaw != yaw
+    assert session.history.position == 0
+
+
+def test_pick_agrees_with_trimesh_ray(session, sphere):
+    # Reference: trimesh's ray-mesh intersector on the same camera ray.
+    mesh = trimesh.Trimesh(*sphere, process=False)
+    origin, direction = session.camera.ray(W / 2 + 40, H / 2 - 30, W, H)
+    points, _, _ = mesh.ray.intersects_location([origin], [direction])
+    nearest = points[np.argmin(np.linalg.norm(points - origin, axis=1))]
+    hit = session.pick(W / 2 + 40, H / 2 - 30)
+    assert hit.hit
+    np.testing.assert_allclose(hit.point, nearest, atol=1e-9)
+
+
+def test_pins_are_placed_and_removed_by_clicking(session):
+    session.key("_5")
+    x, y = W / 2 + 20, H / 2 + 10
+    session.press(x, y, LEFT)
+    session.release(x, y, LEFT)
+    assert len(session.pins) == 1
+    np.testing.assert_allclose(session.pins[0], session.pick(x, y).point)
+    # A second click within a few pixels of the pin's screen position removes it.
+    session.press(x + 3, y - 2, LEFT)
+    session.release(x + 3, y - 2, LEFT)
+    assert session.pins == []
+    session.press(x, y, LEFT)
+    session.key("DELETE")
+    assert session.pins == []
+
+
+def test_mask_painting_and_erasing(session, sphere):
+    vertices = sphere[0]
+    session.key("_6")
+    x, y = W / 2, H / 2
+    point = session.pick(x, y).point
+    session.press(x, y, LEFT)
+    session.release(x, y, LEFT)
+    d = np.linalg.norm(vertices - point, axis=1)
+    inside, outside = d < 0.5 * session.radius, d > session.radius
+    assert inside.any()
+    # One paint event: hold = 0.5 * (1 - (d/r)^2)^2 (the documented bump) inside the radius.
+    expected = 0.5 * (1 - (d[inside] / session.radius) ** 2) ** 2
+    np.testing.assert_allclose(session.hold[inside], expected, rtol=1e-12)
+    assert np.all(session.hold[outside] == 0)
+    session.press(x, y, LEFT, MOD_SHIFT)
+    session.release(x, y, LEFT, MOD_SHIFT)
+    assert np.all(session.hold == 0)
+    session.press(x, y, LEFT)
+    session.release(x, y, LEFT)
+    session.key("DELETE", MOD_SHIFT)
+    assert np.all(session.hold == 0)
+
+
+def test_undo_and_redo_with_empty_history_only_say_so(session):
+    assert session.key("Z", MOD_CTRL) == "undo"
+    assert session.message == "nothing to undo"
+    session.key("Y", MOD_CTRL)
+    assert session.message == "nothing to redo"
+
+
+def test_frame_all_and_status(session):
+    session.camera.zoom(5.0)
+    session.key("HOME")
+    status = session.status()
+    assert status["vertices"] == 642 and status["strokes"] == 0
+    assert status["volume_change"] == pytest.approx(0.0)
+    # Frame all fits the bounding sphere of the box (viewer.camera.frame's rule).
+    half_diagonal = math.sqrt(3) * 1.05
+    fov = session.camera.fov_y / 2
+    assert session.camera.distance == pytest.approx(half_diagonal / math.sin(fov), rel=1e-3)
+
+
+def test_no_mesh_file_means_no_journal(session):
+    assert session.journal is None and session.pending_recovery is None
+
+
+def test_bad_input(sphere):
+    with pytest.raises(ValueError, match="^vertices"):
+        Session(np.zeros((0, 3)), sphere[1])
+    with pytest.raises(ValueError, match="^faces"):
+        Session(sphere[0], np.zeros((0, 3), int))
+
+
+def test_sphere_fallback_is_closed():
+    v, f = session_module.sphere_mesh(2)
+    assert trimesh.Trimesh(v, f, process=False).is_watertight
