@@ -208,15 +208,22 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
     """
     import pyglet
     vertices, faces, doc, path, out_dir, journal = load_model(mesh_path)
-    config = None
-    try:
-        config = pyglet.gl.Config(double_buffer=True, depth_size=24, sample_buffers=1, samples=4)
+    # Ask for 8 bits per channel: some drivers (EGL pbuffers among them) otherwise hand out
+    # 16-bit colour, which bands the shading.
+    base = dict(double_buffer=True, depth_size=24, red_size=8, green_size=8, blue_size=8,
+                alpha_size=8)
+    window = None
+    for extra in ({"sample_buffers": 1, "samples": 4}, {}):
+        try:
+            window = pyglet.window.Window(width=size[0], height=size[1], caption=TITLE,
+                                          resizable=True, visible=visible,
+                                          config=pyglet.gl.Config(**base, **extra))
+            break
+        except pyglet.window.NoSuchConfigException:
+            continue
+    if window is None:
         window = pyglet.window.Window(width=size[0], height=size[1], caption=TITLE,
-                                      resizable=True, visible=visible, config=config)
-    except pyglet.window.NoSuchConfigException:
-        window = pyglet.window.Window(width=size[0], height=size[1], caption=TITLE,
-                                      resizable=True, visible=visible,
-                                      config=pyglet.gl.Config(double_buffer=True, depth_size=24))
+                                      resizable=True, visible=visible)
     session = Session(vertices, faces, doc=doc, mesh_path=path, out_dir=out_dir,
                       size=window.get_size(), journal=journal)
     if recover:
