@@ -227,7 +227,10 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
     session = Session(vertices, faces, doc=doc, mesh_path=path, out_dir=out_dir,
                       size=window.get_size(), journal=journal)
     if recover:
-        session.message = session.recover()
+        try:
+            session.message = session.recover()
+        except ValueError as exc:  # a damaged journal, or one recorded for another mesh
+            session.message = f"recovery failed: {exc}"
     return Viewer(window, session)
 
 

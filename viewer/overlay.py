@@ -60,5 +60,6 @@ def bindings_markdown(bindings):
     rows = ["| key or mouse | does |", "| --- | --- |"]
     for key, _, description in bindings:
         shown = key.replace("|", "\\|")
-        rows.append(f"| `{shown}` | {description} |")
+        text = description.replace("<", "\\<").replace(">", "\\>").replace("|", "\\|")
+        rows.append(f"| `{shown}` | {text} |")
     return "\n".join(rows)

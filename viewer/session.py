@@ -69,7 +69,7 @@ BINDINGS = [
     ("Ctrl+E", "export_mesh", "export the posed mesh (<mesh>-posed.<ext>)"),
     ("Ctrl+D", "export_delta", "export the corrective shape (<mesh>-pose.glb and .npz)"),
     ("Enter", "recover", "replay the strokes of an interrupted session (when offered)"),
-    ("Backspace", "recover_discard", "start afresh instead (when offered)"),
+    ("Backspace", "recover_discard", "discard those strokes and start afresh (when offered)"),
     ("Esc", "cancel", "cancel the stroke in progress"),
     ("Ctrl+Q", "quit", "close the viewer (unsaved strokes stay in the journal)"),
     ("Left drag on model", "stroke", "apply the current brush or tool"),
@@ -263,8 +263,8 @@ class Session:
             found = find_journal(self.mesh_path)
             if found:
                 self.pending_recovery = found
-                self.message = ("unsaved strokes from an interrupted session were found: "
-                                "Enter replays them, Backspace starts afresh")
+                self.message = ("unsaved strokes from an interrupted session were found: Enter "
+                                "replays them; Backspace or a new stroke discards them")
 
     # ------------------------------------------------------------------ state for drawing
     @property
