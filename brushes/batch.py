@@ -127,14 +127,38 @@ def _groups(doc):
     return getattr(doc, "groups", None)
 
 
-def _ignore_sigint() -> None:
+def _start_worker(threads: int) -> None:
+    """Initializer of a local worker process."""
     # Workers leave Ctrl-C to the parent, which cancels what has not started and waits
     # for the running meshes to finish their (atomic) writes.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # The numba kernels run parallel loops on every core by default; with several worker
+    # processes that oversubscribes the cores, so each worker takes its share.
+    try:
+        import numba
+    except ImportError:
+        return
+    numba.set_num_threads(max(1, min(threads, numba.config.NUMBA_NUM_THREADS)))
+
+
+def _pool_context():
+    """A start method that is safe after numba's OpenMP threads have run in this process.
+
+    fork() copies a process whose thread pool cannot work in the child (GNU OpenMP stops the
+    child), so workers come from a fresh forkserver where the platform has one, else spawn.
+    """
+    import multiprocessing
+
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(["brushes.batch", "brushes.meshio", "brushes.recipe"])
+        return ctx
+    return multiprocessing.get_context("spawn")
 
 
 def run_batch(recipe, tasks: Sequence[tuple[str, str]], *, jobs: int | None = None,
               scheduler: str | None = None,
+              on_start: Callable[[], None] | None = None,
               on_done: Callable[[Outcome], None] | None = None) -> list[Outcome]:
     """Run ``pose_file`` over ``tasks`` and return one ``Outcome`` per task, in task order.
 
@@ -143,6 +167,8 @@ def run_batch(recipe, tasks: Sequence[tuple[str, str]], *, jobs: int | None = No
     jobs : local worker processes (default ``os.cpu_count()``); 1 runs in this process.
     scheduler : address of a Dask distributed scheduler; the work runs there instead.
         Workers must see the same paths (a shared file system).
+    on_start : called once, when the workers are reached and the work is handed out (a
+        cluster that cannot be reached raises ``ClusterUnavailable`` before this).
     on_done : called with each ``Outcome`` as it completes (in completion order).
 
     Ctrl-C (``KeyboardInterrupt``) cancels the meshes not yet started, lets the running
@@ -152,29 +178,34 @@ def run_batch(recipe, tasks: Sequence[tuple[str, str]], *, jobs: int | None = No
         raise BatchError(f"--jobs: must be at least 1, got {jobs}")
     if isinstance(recipe, os.PathLike):
         recipe = os.fspath(recipe)
+    on_start = on_start or (lambda: None)
     on_done = on_done or (lambda outcome: None)
     tasks = list(tasks)
     if not tasks:
         return []
     if scheduler is not None:
-        return _run_dask(recipe, tasks, scheduler, on_done)
+        return _run_dask(recipe, tasks, scheduler, on_start, on_done)
     jobs = min(jobs or os.cpu_count() or 1, len(tasks))
     if jobs == 1:
+        on_start()
         outcomes = []
         for source, target in tasks:
             outcome = pose_file(recipe, source, target)
             on_done(outcome)
             outcomes.append(outcome)
         return outcomes
-    return _run_pool(recipe, tasks, jobs, on_done)
+    return _run_pool(recipe, tasks, jobs, on_start, on_done)
 
 
-def _run_pool(recipe, tasks, jobs, on_done) -> list[Outcome]:
+def _run_pool(recipe, tasks, jobs, on_start, on_done) -> list[Outcome]:
     results: dict[int, Outcome] = {}
-    pool = ProcessPoolExecutor(max_workers=jobs, initializer=_ignore_sigint)
+    threads = max(1, (os.cpu_count() or 1) // jobs)
+    pool = ProcessPoolExecutor(max_workers=jobs, mp_context=_pool_context(),
+                               initializer=_start_worker, initargs=(threads,))
     try:
         pending = {pool.submit(pose_file, recipe, src, dst): i
                    for i, (src, dst) in enumerate(tasks)}
+        on_start()
         while pending:
             done, _ = wait(pending, return_when=FIRST_COMPLETED)
             for future in done:
@@ -193,7 +224,7 @@ def _run_pool(recipe, tasks, jobs, on_done) -> list[Outcome]:
     return [results[i] for i in range(len(tasks))]
 
 
-def _run_dask(recipe, tasks, address, on_done) -> list[Outcome]:
+def _run_dask(recipe, tasks, address, on_start, on_done) -> list[Outcome]:
     try:
         from distributed import Client, as_completed
     except ImportError as exc:
@@ -208,8 +239,9 @@ def _run_dask(recipe, tasks, address, on_done) -> list[Outcome]:
         futures = [client.submit(pose_file, recipe, src, dst, pure=False)
                    for src, dst in tasks]
         index = {future.key: i for i, future in enumerate(futures)}
+        on_start()
         results: dict[int, Outcome] = {}
-        for future in as_completed(futures):
+        for future in as_completed(futures, loop=client.loop):
             i = index[future.key]
             try:
                 outcome = future.result()

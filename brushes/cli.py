@@ -345,19 +345,26 @@ def cmd_batch(args) -> int:
     from tqdm import tqdm
 
     start = time.perf_counter()
-    failed = []
-    with tqdm(total=len(tasks), file=sys.stderr, unit="mesh", desc="batch",
-              disable=args.quiet, dynamic_ncols=True) as bar:
-        def done(outcome) -> None:
-            if not outcome.ok:
-                failed.append(outcome)
-                named = (outcome.error if outcome.source in outcome.error
-                         else f"{outcome.source}: {outcome.error}")
-                bar.write(f"{PROG}: error: {named}", file=sys.stderr)
-            bar.update(1)
+    bars = []
 
+    def started() -> None:
+        bars.append(tqdm(total=len(tasks), file=sys.stderr, unit="mesh", desc="batch",
+                         disable=args.quiet, dynamic_ncols=True))
+
+    def done(outcome) -> None:
+        if not outcome.ok:
+            named = (outcome.error if outcome.source in outcome.error
+                     else f"{outcome.source}: {outcome.error}")
+            tqdm.write(f"{PROG}: error: {named}", file=sys.stderr)
+        if bars:
+            bars[0].update(1)
+
+    try:
         outcomes = run_batch(recipe, tasks, jobs=args.jobs, scheduler=args.scheduler,
-                             on_done=done)
+                             on_start=started, on_done=done)
+    finally:
+        for bar in bars:
+            bar.close()
     seconds = time.perf_counter() - start
     posed = sum(o.ok for o in outcomes)
     print(f"batch: {posed} posed, {len(outcomes) - posed} failed, {seconds:.1f} s")
