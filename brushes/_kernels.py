@@ -154,30 +154,32 @@ def np_affine_jacobian(points, center, F, eps, w, beta, out):
 
 
 def _numba_kernels():
-    """Compile the numba backend (parallel loops over points)."""
+    """Compile the numba backend: parallel loops over points, radii unrolled per falloff."""
     import numba
 
-    opts = dict(parallel=True, cache=True, fastmath=False, nogil=True)
+    opts = dict(parallel=True, cache=True, fastmath=True, nogil=True)
 
     @numba.njit(**opts)
-    def grab_displacement(points, center, move, eps, w, beta, out):
+    def grab_displacement_1(points, center, move, eps, w, beta, out):
         n = points.shape[0]
         m0, m1, m2 = move[0], move[1], move[2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        e_0 = eps[0]
+        w_0 = w[0]
         for i in numba.prange(n):
-            r0 = points[i, 0] - center[0]
-            r1 = points[i, 1] - center[1]
-            r2 = points[i, 2] - center[2]
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
             rr = r0 * r0 + r1 * r1 + r2 * r2
             ta = 0.0
             tb = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-                g0 = t**3
-                pa = -beta*t + (1/2)*e**2*g0 + t
-                pb = beta*g0
-                ta += w[k] * pa
-                tb += w[k] * pb
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_0 * pa
+            tb += w_0 * pb
             rm = (r0 * m0 + r1 * m1 + r2 * m2) * tb
             out[i, 0] = ta * m0 + rm * r0
             out[i, 1] = ta * m1 + rm * r1
@@ -185,8 +187,91 @@ def _numba_kernels():
         return out
 
     @numba.njit(**opts)
-    def grab_jacobian(points, center, move, eps, w, beta, out):
+    def grab_displacement_2(points, center, move, eps, w, beta, out):
         n = points.shape[0]
+        m0, m1, m2 = move[0], move[1], move[2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        for i in numba.prange(n):
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
+            rr = r0 * r0 + r1 * r1 + r2 * r2
+            ta = 0.0
+            tb = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_0 * pa
+            tb += w_0 * pb
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_1 * pa
+            tb += w_1 * pb
+            rm = (r0 * m0 + r1 * m1 + r2 * m2) * tb
+            out[i, 0] = ta * m0 + rm * r0
+            out[i, 1] = ta * m1 + rm * r1
+            out[i, 2] = ta * m2 + rm * r2
+        return out
+
+    @numba.njit(**opts)
+    def grab_displacement_3(points, center, move, eps, w, beta, out):
+        n = points.shape[0]
+        m0, m1, m2 = move[0], move[1], move[2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        e_2 = eps[2]
+        w_2 = w[2]
+        for i in numba.prange(n):
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
+            rr = r0 * r0 + r1 * r1 + r2 * r2
+            ta = 0.0
+            tb = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_0 * pa
+            tb += w_0 * pb
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_1 * pa
+            tb += w_1 * pb
+            e = e_2
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = t**3
+            pa = -beta*t + (1/2)*e**2*g0 + t
+            pb = beta*g0
+            ta += w_2 * pa
+            tb += w_2 * pb
+            rm = (r0 * m0 + r1 * m1 + r2 * m2) * tb
+            out[i, 0] = ta * m0 + rm * r0
+            out[i, 1] = ta * m1 + rm * r1
+            out[i, 2] = ta * m2 + rm * r2
+        return out
+
+    @numba.njit(**opts)
+    def grab_jacobian_1(points, center, move, eps, w, beta, out):
+        n = points.shape[0]
+        e_0 = eps[0]
+        w_0 = w[0]
         for i in numba.prange(n):
             r = np.empty(3)
             r[0] = points[i, 0] - center[0]
@@ -197,20 +282,19 @@ def _numba_kernels():
             tb = 0.0
             tda = 0.0
             tdb = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-                g0 = e**2
-                g1 = t**3
-                g2 = t**5
-                pa = -beta*t + (1/2)*g0*g1 + t
-                pb = beta*g1
-                pda = beta*g1 - 3/2*g0*g2 - g1
-                pdb = -3*beta*g2
-                ta += w[k] * pa
-                tb += w[k] * pb
-                tda += w[k] * pda
-                tdb += w[k] * pdb
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_0 * pa
+            tb += w_0 * pb
+            tda += w_0 * pda
+            tdb += w_0 * pdb
             rm = r[0] * move[0] + r[1] * move[1] + r[2] * move[2]
             for a in range(3):
                 for l in range(3):
@@ -221,34 +305,158 @@ def _numba_kernels():
         return out
 
     @numba.njit(**opts)
-    def affine_displacement(points, center, F, eps, w, beta, out):
+    def grab_jacobian_2(points, center, move, eps, w, beta, out):
+        n = points.shape[0]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        for i in numba.prange(n):
+            r = np.empty(3)
+            r[0] = points[i, 0] - center[0]
+            r[1] = points[i, 1] - center[1]
+            r[2] = points[i, 2] - center[2]
+            rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
+            ta = 0.0
+            tb = 0.0
+            tda = 0.0
+            tdb = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_0 * pa
+            tb += w_0 * pb
+            tda += w_0 * pda
+            tdb += w_0 * pdb
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_1 * pa
+            tb += w_1 * pb
+            tda += w_1 * pda
+            tdb += w_1 * pdb
+            rm = r[0] * move[0] + r[1] * move[1] + r[2] * move[2]
+            for a in range(3):
+                for l in range(3):
+                    v = tda * move[a] * r[l] + tb * move[l] * r[a] + tdb * rm * r[a] * r[l]
+                    if a == l:
+                        v += tb * rm
+                    out[i, a, l] = v
+        return out
+
+    @numba.njit(**opts)
+    def grab_jacobian_3(points, center, move, eps, w, beta, out):
+        n = points.shape[0]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        e_2 = eps[2]
+        w_2 = w[2]
+        for i in numba.prange(n):
+            r = np.empty(3)
+            r[0] = points[i, 0] - center[0]
+            r[1] = points[i, 1] - center[1]
+            r[2] = points[i, 2] - center[2]
+            rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
+            ta = 0.0
+            tb = 0.0
+            tda = 0.0
+            tdb = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_0 * pa
+            tb += w_0 * pb
+            tda += w_0 * pda
+            tdb += w_0 * pdb
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_1 * pa
+            tb += w_1 * pb
+            tda += w_1 * pda
+            tdb += w_1 * pdb
+            e = e_2
+            t = 1.0 / math.sqrt(rr + e * e)
+            g0 = e**2
+            g1 = t**3
+            g2 = t**5
+            pa = -beta*t + (1/2)*g0*g1 + t
+            pb = beta*g1
+            pda = beta*g1 - 3/2*g0*g2 - g1
+            pdb = -3*beta*g2
+            ta += w_2 * pa
+            tb += w_2 * pb
+            tda += w_2 * pda
+            tdb += w_2 * pdb
+            rm = r[0] * move[0] + r[1] * move[1] + r[2] * move[2]
+            for a in range(3):
+                for l in range(3):
+                    v = tda * move[a] * r[l] + tb * move[l] * r[a] + tdb * rm * r[a] * r[l]
+                    if a == l:
+                        v += tb * rm
+                    out[i, a, l] = v
+        return out
+
+    @numba.njit(**opts)
+    def affine_displacement_1(points, center, F, eps, w, beta, out):
         n = points.shape[0]
         tr = F[0, 0] + F[1, 1] + F[2, 2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        F00, F01, F02 = F[0, 0], F[0, 1], F[0, 2]
+        F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
+        F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
         for i in numba.prange(n):
-            r0 = points[i, 0] - center[0]
-            r1 = points[i, 1] - center[1]
-            r2 = points[i, 2] - center[2]
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
             rr = r0 * r0 + r1 * r1 + r2 * r2
             tp = 0.0
             tq = 0.0
             ts = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-                h0 = t**3
-                h1 = t**5
-                pp = beta*h0 - 3/2*e**2*h1 - h0
-                pq = beta*h0
-                ps = -3*beta*h1
-                tp += w[k] * pp
-                tq += w[k] * pq
-                ts += w[k] * ps
-            f0 = F[0, 0] * r0 + F[0, 1] * r1 + F[0, 2] * r2
-            f1 = F[1, 0] * r0 + F[1, 1] * r1 + F[1, 2] * r2
-            f2 = F[2, 0] * r0 + F[2, 1] * r1 + F[2, 2] * r2
-            g0 = F[0, 0] * r0 + F[1, 0] * r1 + F[2, 0] * r2 + tr * r0
-            g1 = F[0, 1] * r0 + F[1, 1] * r1 + F[2, 1] * r2 + tr * r1
-            g2 = F[0, 2] * r0 + F[1, 2] * r1 + F[2, 2] * r2 + tr * r2
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            f0 = F00 * r0 + F01 * r1 + F02 * r2
+            f1 = F10 * r0 + F11 * r1 + F12 * r2
+            f2 = F20 * r0 + F21 * r1 + F22 * r2
+            g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
+            g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
+            g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
             rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts
             out[i, 0] = tp * f0 + tq * g0 + rfr * r0
             out[i, 1] = tp * f1 + tq * g1 + rfr * r1
@@ -256,9 +464,127 @@ def _numba_kernels():
         return out
 
     @numba.njit(**opts)
-    def affine_jacobian(points, center, F, eps, w, beta, out):
+    def affine_displacement_2(points, center, F, eps, w, beta, out):
         n = points.shape[0]
         tr = F[0, 0] + F[1, 1] + F[2, 2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        F00, F01, F02 = F[0, 0], F[0, 1], F[0, 2]
+        F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
+        F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        for i in numba.prange(n):
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
+            rr = r0 * r0 + r1 * r1 + r2 * r2
+            tp = 0.0
+            tq = 0.0
+            ts = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_1 * pp
+            tq += w_1 * pq
+            ts += w_1 * ps
+            f0 = F00 * r0 + F01 * r1 + F02 * r2
+            f1 = F10 * r0 + F11 * r1 + F12 * r2
+            f2 = F20 * r0 + F21 * r1 + F22 * r2
+            g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
+            g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
+            g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
+            rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts
+            out[i, 0] = tp * f0 + tq * g0 + rfr * r0
+            out[i, 1] = tp * f1 + tq * g1 + rfr * r1
+            out[i, 2] = tp * f2 + tq * g2 + rfr * r2
+        return out
+
+    @numba.njit(**opts)
+    def affine_displacement_3(points, center, F, eps, w, beta, out):
+        n = points.shape[0]
+        tr = F[0, 0] + F[1, 1] + F[2, 2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        F00, F01, F02 = F[0, 0], F[0, 1], F[0, 2]
+        F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
+        F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        e_2 = eps[2]
+        w_2 = w[2]
+        for i in numba.prange(n):
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
+            rr = r0 * r0 + r1 * r1 + r2 * r2
+            tp = 0.0
+            tq = 0.0
+            ts = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_1 * pp
+            tq += w_1 * pq
+            ts += w_1 * ps
+            e = e_2
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = t**5
+            pp = beta*h0 - 3/2*e**2*h1 - h0
+            pq = beta*h0
+            ps = -3*beta*h1
+            tp += w_2 * pp
+            tq += w_2 * pq
+            ts += w_2 * ps
+            f0 = F00 * r0 + F01 * r1 + F02 * r2
+            f1 = F10 * r0 + F11 * r1 + F12 * r2
+            f2 = F20 * r0 + F21 * r1 + F22 * r2
+            g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
+            g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
+            g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
+            rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts
+            out[i, 0] = tp * f0 + tq * g0 + rfr * r0
+            out[i, 1] = tp * f1 + tq * g1 + rfr * r1
+            out[i, 2] = tp * f2 + tq * g2 + rfr * r2
+        return out
+
+    @numba.njit(**opts)
+    def affine_jacobian_1(points, center, F, eps, w, beta, out):
+        n = points.shape[0]
+        tr = F[0, 0] + F[1, 1] + F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
         for i in numba.prange(n):
             r = np.empty(3)
             fr = np.empty(3)
@@ -273,27 +599,26 @@ def _numba_kernels():
             tdp = 0.0
             tdq = 0.0
             tds = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-                h0 = t**3
-                h1 = e**2
-                h2 = t**5
-                h3 = 3*h2
-                h4 = -beta*h3
-                h5 = t**7
-                pp = beta*h0 - h0 - 3/2*h1*h2
-                pq = beta*h0
-                ps = h4
-                pdp = (15/2)*h1*h5 + h3 + h4
-                pdq = h4
-                pds = 15*beta*h5
-                tp += w[k] * pp
-                tq += w[k] * pq
-                ts += w[k] * ps
-                tdp += w[k] * pdp
-                tdq += w[k] * pdq
-                tds += w[k] * pds
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            tdp += w_0 * pdp
+            tdq += w_0 * pdq
+            tds += w_0 * pds
             for a in range(3):
                 fr[a] = F[a, 0] * r[0] + F[a, 1] * r[1] + F[a, 2] * r[2]
                 gr[a] = F[0, a] * r[0] + F[1, a] * r[1] + F[2, a] * r[2]
@@ -307,4 +632,189 @@ def _numba_kernels():
                     out[i, a, l] = v
         return out
 
-    return grab_displacement, grab_jacobian, affine_displacement, affine_jacobian
+    @numba.njit(**opts)
+    def affine_jacobian_2(points, center, F, eps, w, beta, out):
+        n = points.shape[0]
+        tr = F[0, 0] + F[1, 1] + F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        for i in numba.prange(n):
+            r = np.empty(3)
+            fr = np.empty(3)
+            gr = np.empty(3)
+            r[0] = points[i, 0] - center[0]
+            r[1] = points[i, 1] - center[1]
+            r[2] = points[i, 2] - center[2]
+            rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
+            tp = 0.0
+            tq = 0.0
+            ts = 0.0
+            tdp = 0.0
+            tdq = 0.0
+            tds = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            tdp += w_0 * pdp
+            tdq += w_0 * pdq
+            tds += w_0 * pds
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_1 * pp
+            tq += w_1 * pq
+            ts += w_1 * ps
+            tdp += w_1 * pdp
+            tdq += w_1 * pdq
+            tds += w_1 * pds
+            for a in range(3):
+                fr[a] = F[a, 0] * r[0] + F[a, 1] * r[1] + F[a, 2] * r[2]
+                gr[a] = F[0, a] * r[0] + F[1, a] * r[1] + F[2, a] * r[2]
+            rfr = r[0] * fr[0] + r[1] * fr[1] + r[2] * fr[2]
+            for a in range(3):
+                lead = tdp * fr[a] + tdq * (gr[a] + tr * r[a]) + tds * rfr * r[a]
+                for l in range(3):
+                    v = tp * F[a, l] + tq * F[l, a] + ts * r[a] * (fr[l] + gr[l]) + lead * r[l]
+                    if a == l:
+                        v += tq * tr + ts * rfr
+                    out[i, a, l] = v
+        return out
+
+    @numba.njit(**opts)
+    def affine_jacobian_3(points, center, F, eps, w, beta, out):
+        n = points.shape[0]
+        tr = F[0, 0] + F[1, 1] + F[2, 2]
+        e_0 = eps[0]
+        w_0 = w[0]
+        e_1 = eps[1]
+        w_1 = w[1]
+        e_2 = eps[2]
+        w_2 = w[2]
+        for i in numba.prange(n):
+            r = np.empty(3)
+            fr = np.empty(3)
+            gr = np.empty(3)
+            r[0] = points[i, 0] - center[0]
+            r[1] = points[i, 1] - center[1]
+            r[2] = points[i, 2] - center[2]
+            rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
+            tp = 0.0
+            tq = 0.0
+            ts = 0.0
+            tdp = 0.0
+            tdq = 0.0
+            tds = 0.0
+            e = e_0
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_0 * pp
+            tq += w_0 * pq
+            ts += w_0 * ps
+            tdp += w_0 * pdp
+            tdq += w_0 * pdq
+            tds += w_0 * pds
+            e = e_1
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_1 * pp
+            tq += w_1 * pq
+            ts += w_1 * ps
+            tdp += w_1 * pdp
+            tdq += w_1 * pdq
+            tds += w_1 * pds
+            e = e_2
+            t = 1.0 / math.sqrt(rr + e * e)
+            h0 = t**3
+            h1 = e**2
+            h2 = t**5
+            h3 = 3*h2
+            h4 = -beta*h3
+            h5 = t**7
+            pp = beta*h0 - h0 - 3/2*h1*h2
+            pq = beta*h0
+            ps = h4
+            pdp = (15/2)*h1*h5 + h3 + h4
+            pdq = h4
+            pds = 15*beta*h5
+            tp += w_2 * pp
+            tq += w_2 * pq
+            ts += w_2 * ps
+            tdp += w_2 * pdp
+            tdq += w_2 * pdq
+            tds += w_2 * pds
+            for a in range(3):
+                fr[a] = F[a, 0] * r[0] + F[a, 1] * r[1] + F[a, 2] * r[2]
+                gr[a] = F[0, a] * r[0] + F[1, a] * r[1] + F[2, a] * r[2]
+            rfr = r[0] * fr[0] + r[1] * fr[1] + r[2] * fr[2]
+            for a in range(3):
+                lead = tdp * fr[a] + tdq * (gr[a] + tr * r[a]) + tds * rfr * r[a]
+                for l in range(3):
+                    v = tp * F[a, l] + tq * F[l, a] + ts * r[a] * (fr[l] + gr[l]) + lead * r[l]
+                    if a == l:
+                        v += tq * tr + ts * rfr
+                    out[i, a, l] = v
+        return out
+
+    return {
+    ('grab_displacement', 1): grab_displacement_1,
+    ('grab_displacement', 2): grab_displacement_2,
+    ('grab_displacement', 3): grab_displacement_3,
+    ('grab_jacobian', 1): grab_jacobian_1,
+    ('grab_jacobian', 2): grab_jacobian_2,
+    ('grab_jacobian', 3): grab_jacobian_3,
+    ('affine_displacement', 1): affine_displacement_1,
+    ('affine_displacement', 2): affine_displacement_2,
+    ('affine_displacement', 3): affine_displacement_3,
+    ('affine_jacobian', 1): affine_jacobian_1,
+    ('affine_jacobian', 2): affine_jacobian_2,
+    ('affine_jacobian', 3): affine_jacobian_3,
+    }

@@ -519,64 +519,48 @@ def _profile_exprs():
     return grab_u, grab_j, aff_u, aff_j
 
 
-def _numba_kernels():
-    grab_u, grab_j, aff_u, aff_j = _profile_exprs()
-    gu = _cse_block(grab_u, ["pa", "pb"], 16, "g")
-    gj = _cse_block(grab_j, ["pa", "pb", "pda", "pdb"], 16, "g")
-    au = _cse_block(aff_u, ["pp", "pq", "ps"], 16, "h")
-    aj = _cse_block(aff_j, ["pp", "pq", "ps", "pdp", "pdq", "pds"], 16, "h")
-    return f'''
+def _radii_block(K, cse_text, profiles, totals, indent):
+    """The per-radius profile sums, unrolled over K radii (lets LLVM vectorize the point loop)."""
+    pad = " " * indent
+    lines = [f"{pad}{tot} = 0.0" for tot in totals]
+    for k in range(K):
+        lines.append(f"{pad}e = e_{k}")
+        lines.append(f"{pad}t = 1.0 / math.sqrt(rr + e * e)")
+        lines.append(cse_text)
+        lines += [f"{pad}{tot} += w_{k} * {prof}" for tot, prof in zip(totals, profiles)]
+    return "\n".join(lines)
 
-def _numba_kernels():
-    """Compile the numba backend (parallel loops over points)."""
-    import numba
 
-    opts = dict(parallel=True, cache=True, fastmath=False, nogil=True)
-
-    @numba.njit(**opts)
-    def grab_displacement(points, center, move, eps, w, beta, out):
+_NUMBA_BODIES = {
+    "grab_displacement": ("grab_u", ["pa", "pb"], ["ta", "tb"], """\
+    def grab_displacement_{K}(points, center, move, eps, w, beta, out):
         n = points.shape[0]
         m0, m1, m2 = move[0], move[1], move[2]
+        c0, c1, c2 = center[0], center[1], center[2]
+{radii_setup}
         for i in numba.prange(n):
-            r0 = points[i, 0] - center[0]
-            r1 = points[i, 1] - center[1]
-            r2 = points[i, 2] - center[2]
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
             rr = r0 * r0 + r1 * r1 + r2 * r2
-            ta = 0.0
-            tb = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-{gu}
-                ta += w[k] * pa
-                tb += w[k] * pb
+{radii}
             rm = (r0 * m0 + r1 * m1 + r2 * m2) * tb
             out[i, 0] = ta * m0 + rm * r0
             out[i, 1] = ta * m1 + rm * r1
             out[i, 2] = ta * m2 + rm * r2
         return out
-
-    @numba.njit(**opts)
-    def grab_jacobian(points, center, move, eps, w, beta, out):
+"""),
+    "grab_jacobian": ("grab_j", ["pa", "pb", "pda", "pdb"], ["ta", "tb", "tda", "tdb"], """\
+    def grab_jacobian_{K}(points, center, move, eps, w, beta, out):
         n = points.shape[0]
+{radii_setup}
         for i in numba.prange(n):
             r = np.empty(3)
             r[0] = points[i, 0] - center[0]
             r[1] = points[i, 1] - center[1]
             r[2] = points[i, 2] - center[2]
             rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
-            ta = 0.0
-            tb = 0.0
-            tda = 0.0
-            tdb = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-{gj}
-                ta += w[k] * pa
-                tb += w[k] * pb
-                tda += w[k] * pda
-                tdb += w[k] * pdb
+{radii}
             rm = r[0] * move[0] + r[1] * move[1] + r[2] * move[2]
             for a in range(3):
                 for l in range(3):
@@ -585,42 +569,39 @@ def _numba_kernels():
                         v += tb * rm
                     out[i, a, l] = v
         return out
-
-    @numba.njit(**opts)
-    def affine_displacement(points, center, F, eps, w, beta, out):
+"""),
+    "affine_displacement": ("affine_u", ["pp", "pq", "ps"], ["tp", "tq", "ts"], """\
+    def affine_displacement_{K}(points, center, F, eps, w, beta, out):
         n = points.shape[0]
         tr = F[0, 0] + F[1, 1] + F[2, 2]
+        c0, c1, c2 = center[0], center[1], center[2]
+        F00, F01, F02 = F[0, 0], F[0, 1], F[0, 2]
+        F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
+        F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]
+{radii_setup}
         for i in numba.prange(n):
-            r0 = points[i, 0] - center[0]
-            r1 = points[i, 1] - center[1]
-            r2 = points[i, 2] - center[2]
+            r0 = points[i, 0] - c0
+            r1 = points[i, 1] - c1
+            r2 = points[i, 2] - c2
             rr = r0 * r0 + r1 * r1 + r2 * r2
-            tp = 0.0
-            tq = 0.0
-            ts = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-{au}
-                tp += w[k] * pp
-                tq += w[k] * pq
-                ts += w[k] * ps
-            f0 = F[0, 0] * r0 + F[0, 1] * r1 + F[0, 2] * r2
-            f1 = F[1, 0] * r0 + F[1, 1] * r1 + F[1, 2] * r2
-            f2 = F[2, 0] * r0 + F[2, 1] * r1 + F[2, 2] * r2
-            g0 = F[0, 0] * r0 + F[1, 0] * r1 + F[2, 0] * r2 + tr * r0
-            g1 = F[0, 1] * r0 + F[1, 1] * r1 + F[2, 1] * r2 + tr * r1
-            g2 = F[0, 2] * r0 + F[1, 2] * r1 + F[2, 2] * r2 + tr * r2
+{radii}
+            f0 = F00 * r0 + F01 * r1 + F02 * r2
+            f1 = F10 * r0 + F11 * r1 + F12 * r2
+            f2 = F20 * r0 + F21 * r1 + F22 * r2
+            g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
+            g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
+            g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
             rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts
             out[i, 0] = tp * f0 + tq * g0 + rfr * r0
             out[i, 1] = tp * f1 + tq * g1 + rfr * r1
             out[i, 2] = tp * f2 + tq * g2 + rfr * r2
         return out
-
-    @numba.njit(**opts)
-    def affine_jacobian(points, center, F, eps, w, beta, out):
+"""),
+    "affine_jacobian": ("affine_j", ["pp", "pq", "ps", "pdp", "pdq", "pds"], ["tp", "tq", "ts", "tdp", "tdq", "tds"], """\
+    def affine_jacobian_{K}(points, center, F, eps, w, beta, out):
         n = points.shape[0]
         tr = F[0, 0] + F[1, 1] + F[2, 2]
+{radii_setup}
         for i in numba.prange(n):
             r = np.empty(3)
             fr = np.empty(3)
@@ -629,22 +610,7 @@ def _numba_kernels():
             r[1] = points[i, 1] - center[1]
             r[2] = points[i, 2] - center[2]
             rr = r[0] * r[0] + r[1] * r[1] + r[2] * r[2]
-            tp = 0.0
-            tq = 0.0
-            ts = 0.0
-            tdp = 0.0
-            tdq = 0.0
-            tds = 0.0
-            for k in range(eps.shape[0]):
-                e = eps[k]
-                t = 1.0 / math.sqrt(rr + e * e)
-{aj}
-                tp += w[k] * pp
-                tq += w[k] * pq
-                ts += w[k] * ps
-                tdp += w[k] * pdp
-                tdq += w[k] * pdq
-                tds += w[k] * pds
+{radii}
             for a in range(3):
                 fr[a] = F[a, 0] * r[0] + F[a, 1] * r[1] + F[a, 2] * r[2]
                 gr[a] = F[0, a] * r[0] + F[1, a] * r[1] + F[2, a] * r[2]
@@ -657,9 +623,33 @@ def _numba_kernels():
                         v += tq * tr + ts * rfr
                     out[i, a, l] = v
         return out
+"""),
+}
 
-    return grab_displacement, grab_jacobian, affine_displacement, affine_jacobian
-'''
+
+def _numba_kernels():
+    grab_u, grab_j, aff_u, aff_j = _profile_exprs()
+    cse = {
+        "grab_u": _cse_block(grab_u, ["pa", "pb"], 12, "g"),
+        "grab_j": _cse_block(grab_j, ["pa", "pb", "pda", "pdb"], 12, "g"),
+        "affine_u": _cse_block(aff_u, ["pp", "pq", "ps"], 12, "h"),
+        "affine_j": _cse_block(aff_j, ["pp", "pq", "ps", "pdp", "pdq", "pds"], 12, "h"),
+    }
+    counts = sorted({len(r) for r in FALLOFF_RATIOS.values()})
+    funcs = []
+    names = []
+    for name, (which, profs, tots, body) in _NUMBA_BODIES.items():
+        for K in counts:
+            setup = "\n".join(f"        e_{k} = eps[{k}]\n        w_{k} = w[{k}]" for k in range(K))
+            text = body.replace("{K}", str(K)).replace("{radii_setup}", setup).replace(
+                "{radii}", _radii_block(K, cse[which], profs, tots, 12))
+            funcs.append("    @numba.njit(**opts)\n" + text)
+            names.append(f"    ({name!r}, {K}): {name}_{K},")
+    return ("\n\ndef _numba_kernels():\n"
+            '    """Compile the numba backend: parallel loops over points, radii unrolled per falloff."""\n'
+            "    import numba\n\n"
+            "    opts = dict(parallel=True, cache=True, fastmath=True, nogil=True)\n\n"
+            + "\n".join(funcs) + "\n    return {\n" + "\n".join(names) + "\n    }\n")
 
 
 def _numpy_kernels():

@@ -96,7 +96,7 @@ def grab_displacement(points, center, move, eps, weights, beta, out=None):
     pts = _as_points(points)
     res = _out(out, pts.shape)
     funcs = _numba_funcs()
-    fn = funcs[0] if funcs else gen.np_grab_displacement
+    fn = funcs[('grab_displacement', len(eps))] if funcs else gen.np_grab_displacement
     return fn(pts, center, move, eps, weights, float(beta), res)
 
 
@@ -105,7 +105,7 @@ def grab_jacobian(points, center, move, eps, weights, beta, out=None):
     pts = _as_points(points)
     res = _out(out, pts.shape + (3,))
     funcs = _numba_funcs()
-    fn = funcs[1] if funcs else gen.np_grab_jacobian
+    fn = funcs[('grab_jacobian', len(eps))] if funcs else gen.np_grab_jacobian
     return fn(pts, center, move, eps, weights, float(beta), res)
 
 
@@ -114,7 +114,7 @@ def affine_displacement(points, center, load, eps, weights, beta, out=None):
     pts = _as_points(points)
     res = _out(out, pts.shape)
     funcs = _numba_funcs()
-    fn = funcs[2] if funcs else gen.np_affine_displacement
+    fn = funcs[('affine_displacement', len(eps))] if funcs else gen.np_affine_displacement
     return fn(pts, center, load, eps, weights, float(beta), res)
 
 
@@ -123,7 +123,7 @@ def affine_jacobian(points, center, load, eps, weights, beta, out=None):
     pts = _as_points(points)
     res = _out(out, pts.shape + (3,))
     funcs = _numba_funcs()
-    fn = funcs[3] if funcs else gen.np_affine_jacobian
+    fn = funcs[('affine_jacobian', len(eps))] if funcs else gen.np_affine_jacobian
     return fn(pts, center, load, eps, weights, float(beta), res)
 
 

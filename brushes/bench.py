@@ -1,0 +1,191 @@
+"""Benchmarks: `python -m brushes.bench [--points N] [--only SECTION,...]`.
+
+Ratios are measured in one process against baselines on the same data:
+- the memory-bound floor `np.add(points, 1.0, out=buf)`;
+- a straightforward numpy evaluation of the same formula (the 3x3 kernel matrix per point,
+  or the third-order gradient tensor for the affine loads, then a contraction).
+
+Sections: kernels, flow, startup, io, batch, picking, drag. Figures go to stdout as a table.
+"""
+from __future__ import annotations
+
+import argparse
+import math
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+import brushes
+from brushes import kernels
+from brushes.flow import FlowStats
+
+
+def _best(fn, repeat=5):
+    """Best-of-`repeat` wall time of fn() in seconds (after one warm-up call)."""
+    fn()
+    best = math.inf
+    for _ in range(repeat):
+        t = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t)
+    return best
+
+
+def naive_grab(points, b):
+    """Straightforward numpy: K (n, 3, 3) per point from de Goes & James 2017 eq. 9, then K @ f."""
+    a = 1.0
+    beta = kernels.beta_of(b.poisson)
+    eps, w = kernels.scales(b.falloff, b.radius)
+    norm = kernels.center_value("grab", eps, w, beta)
+    r = points - b.center
+    u = np.zeros_like(r)
+    for e, wk in zip(eps, w):
+        re = np.sqrt(np.sum(r * r, axis=1) + e * e)
+        K = ((a - a * beta) / re + a * e * e / (2 * re**3))[:, None, None] * np.eye(3) \
+            + (a * beta / re**3)[:, None, None] * r[:, :, None] * r[:, None, :]
+        u += wk / norm * np.einsum("nij,j->ni", K, b.move)
+    return u
+
+
+def naive_affine(points, b):
+    """Straightforward numpy: the gradient tensor d_k K_ij (n, 3, 3, 3) contracted with the load."""
+    beta = kernels.beta_of(b.poisson)
+    eps, w = kernels.scales(b.falloff, b.radius)
+    F = b._load
+    r = points - b.center
+    u = np.zeros_like(r)
+    I3 = np.eye(3)
+    for e, wk in zip(eps, w):
+        re = np.sqrt(np.sum(r * r, axis=1) + e * e)
+        dA = (-(1 - beta) / re**3 - 1.5 * e * e / re**5)[:, None, None, None]
+        B = (beta / re**3)[:, None, None, None]
+        dB = (-3 * beta / re**5)[:, None, None, None]
+        dK = dA * I3[None, :, :, None] * r[:, None, None, :] \
+            + dB * r[:, :, None, None] * r[:, None, :, None] * r[:, None, None, :] \
+            + B * (I3[None, :, None, :] * r[:, None, :, None] + I3[None, None, :, :] * r[:, :, None, None])
+        u += wk * np.einsum("nijk,jk->ni", dK, F)
+    return u
+
+
+def example_brushes(falloff="wide"):
+    c = (0.1, 0.2, 0.3)
+    return [brushes.Grab(c, 0.5, (0.5, 0.1, 0.0), falloff=falloff),
+            brushes.Twist(c, 0.5, (0.0, 1.0, 0.0), 60.0, falloff=falloff),
+            brushes.Scale(c, 0.5, 1.3, falloff=falloff),
+            brushes.Pinch(c, 0.5, [[0.2, 0.0, 0.0], [0.0, -0.1, 0.0], [0.0, 0.0, -0.1]], falloff=falloff)]
+
+
+def bench_kernels(n):
+    rng = np.random.default_rng(1)
+    pts = rng.normal(size=(n, 3))
+    buf = np.empty_like(pts)
+    floor = _best(lambda: np.add(pts, 1.0, out=buf))
+    rows = [("np.add(points, 1.0, out=buf)", floor, 1.0, "", "")]
+    sub = pts[: max(1, n // 10)]  # the naive version allocates (n, 3, 3, 3): time it on a tenth
+    for falloff in kernels.FALLOFFS:
+        for b in example_brushes(falloff):
+            t = _best(lambda: b.displacement(pts, out=buf))
+            naive = naive_grab if b.kind == "grab" else naive_affine
+            t_naive = _best(lambda: naive(sub, b), repeat=2) * (n / len(sub))
+            t_sub = _best(lambda: b.displacement(sub))
+            check = np.abs(naive(sub[:1000], b) - b.displacement(sub[:1000])).max()
+            rows.append((f"{b.kind} {falloff} out=", t, t / floor, f"{t_naive / t:.1f}x",
+                         f"{t_naive / (t_sub * n / len(sub)):.1f}x" if check < 1e-9 else "MISMATCH"))
+    print(f"\n## kernels: displacement on {n:,} points ({kernels.backend_name()} backend)")
+    print(f"{'field':34s} {'ms':>8s} {'Mpts/s':>8s} {'/ add':>7s} {'naive/this':>11s}")
+    for name, t, ratio, speed, _ in rows:
+        print(f"{name:34s} {t * 1e3:8.2f} {n / t / 1e6:8.1f} {ratio:7.2f} {speed:>11s}")
+
+
+def bench_flow(n):
+    rng = np.random.default_rng(2)
+    pts = rng.normal(scale=0.6, size=(n, 3))
+    buf = np.empty_like(pts)
+    floor = _best(lambda: np.add(pts, 1.0, out=buf), repeat=3)
+    c = (0.0, 0.0, 0.0)
+    cases = [("grab move = radius", brushes.Grab(c, 0.5, (0.5, 0.0, 0.0))),
+             ("grab move = 2 radius", brushes.Grab(c, 0.5, (1.0, 0.0, 0.0))),
+             ("twist 90 deg", brushes.Twist(c, 0.5, (0, 1, 0), 90.0)),
+             ("twist 720 deg", brushes.Twist(c, 0.5, (0, 1, 0), 720.0)),
+             ("scale x2", brushes.Scale(c, 0.5, 2.0)),
+             ("pinch |G| = 0.5", brushes.Pinch(c, 0.5, [[0.4, 0, 0], [0, -0.2, 0], [0, 0, -0.2]])),
+             ("mirrored grab", brushes.mirror(brushes.Grab((0.3, 0, 0), 0.5, (0, 0.5, 0)), (1, 0, 0)))]
+    print(f"\n## flow: apply(flow=True) on {n:,} points")
+    print(f"{'brush':24s} {'steps':>5s} {'evals':>5s} {'ms':>9s} {'/ add':>7s}")
+    for name, b in cases:
+        t = _best(lambda: b.apply(pts), repeat=2)
+        print(f"{name:24s} {FlowStats.steps:5d} {FlowStats.evaluations:5d} {t * 1e3:9.1f} {t / floor:7.1f}")
+
+
+def bench_startup():
+    code = ("import time; t = time.perf_counter(); import numpy as np, brushes; "
+            "brushes.Grab((0, 0, 0), 1.0, (1, 0, 0)).displacement(np.zeros((10, 3))); "
+            "print(time.perf_counter() - t)")
+    subprocess.run([sys.executable, "-c", code], check=True, capture_output=True)  # warm the cache
+    times = [float(subprocess.run([sys.executable, "-c", code], check=True, capture_output=True,
+                                  text=True).stdout) for _ in range(3)]
+    print("\n## startup: a new process's import + first brush call (numba cache warm)")
+    print(f"best {min(times):.2f} s, worst {max(times):.2f} s")
+
+
+def bench_io(n):
+    from brushes.bench_io import bench_obj
+
+    res = bench_obj(n)
+    print(f"\n## io: OBJ load + structure-keeping save, {n:,} vertices")
+    for k, v in res.items():
+        print(f"{k}: {v:.3f}" if isinstance(v, float) else f"{k}: {v}")
+
+
+def bench_batch_section(copies):
+    from brushes.bench_batch import bench_batch
+
+    res = bench_batch(copies=copies)
+    print(f"\n## batch: {copies} copies of the demo model")
+    for k, v in res.items():
+        print(f"{k}: {v:.3f}" if isinstance(v, float) else f"{k}: {v}")
+
+
+def bench_picking_section(n):
+    from viewer.bench import bench_picking
+
+    res = bench_picking(n)
+    print(f"\n## picking: {n:,} triangles")
+    for k, v in res.items():
+        print(f"{k}: {v:.4f}" if isinstance(v, float) else f"{k}: {v}")
+
+
+def bench_drag_section(n):
+    from viewer.bench_drag import bench_drag
+
+    res = bench_drag(n)
+    print(f"\n## viewer drag update: {n:,} vertices")
+    for k, v in res.items():
+        print(f"{k}: {v:.4f}" if isinstance(v, float) else f"{k}: {v}")
+
+
+SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag")
+
+
+def main(argv=None):
+    p = argparse.ArgumentParser(prog="python -m brushes.bench", description=__doc__.splitlines()[0])
+    p.add_argument("--points", type=int, default=1_000_000, help="points for kernels and flow (default 1,000,000)")
+    p.add_argument("--only", default="kernels,flow,startup",
+                   help=f"comma-separated sections of: {', '.join(SECTIONS)} (default kernels,flow,startup)")
+    args = p.parse_args(argv)
+    chosen = [s.strip() for s in args.only.split(",") if s.strip()]
+    for s in chosen:
+        if s not in SECTIONS:
+            p.error(f"--only: unknown section {s!r}; choose from {', '.join(SECTIONS)}")
+    print(f"pliant benchmarks, {kernels.backend_name()} backend")
+    for s in chosen:
+        {"kernels": lambda: bench_kernels(args.points), "flow": lambda: bench_flow(args.points),
+         "startup": bench_startup, "io": lambda: bench_io(1_000_000), "batch": lambda: bench_batch_section(200),
+         "picking": lambda: bench_picking_section(1_000_000), "drag": lambda: bench_drag_section(200_000)}[s]()
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
