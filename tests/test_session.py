@@ -225,3 +225,113 @@ def test_bad_input(sphere):
 def test_sphere_fallback_is_closed():
     v, f = session_module.sphere_mesh(2)
     assert trimesh.Trimesh(v, f, process=False).is_watertight
+
+
+# ---------------------------------------------------------------------------- strokes
+
+def _drag(session, start, end, steps=4, modifiers=0):
+    (x0, y0), (x1, y1) = start, end
+    session.press(x0, y0, LEFT, modifiers)
+    px, py = x0, y0
+    for i in range(1, steps + 1):
+        x, y = x0 + (x1 - x0) * i / steps, y0 + (y1 - y0) * i / steps
+        session.drag(x, y, x - px, y - py, LEFT, modifiers)
+        px, py = x, y
+
+
+def _mirror_map(vertices, axis=0):
+    """Index of each vertex's mirror image across the plane x_axis = 0 (by nearest point)."""
+    from scipy.spatial import cKDTree
+    reflected = vertices.copy()
+    reflected[:, axis] *= -1
+    distance, index = cKDTree(vertices).query(reflected)
+    assert distance.max() < 1e-9  # the mesh is symmetric
+    return index
+
+
+@pytest.mark.parametrize("tool, falloff", [("_1", "wide"), ("_1", "tight"), ("_2", "medium"),
+                                            ("_3", "wide"), ("_4", "tight")])
+def test_preview_is_the_one_step_displacement_within_tolerance(session, sphere, tool, falloff):
+    # Reference: the engine's own brush.apply(flow=False) on every vertex. The preview skips
+    # vertices beyond brush.reach(tol), so it may differ there, but by less than tol.
+    import brushes
+    from brushes import registry
+    session.key(tool)
+    while session.falloff != falloff:
+        session.key("SEMICOLON")
+    _drag(session, (W / 2 + 15, H / 2 + 5), (W / 2 + 45, H / 2 + 35))
+    drag = session._drag
+    kwargs = {k: v for k, v in drag.params.items() if k != "kind"}
+    brush = registry.lookup(drag.params["kind"])(**kwargs, poisson=session.poisson[drag.kind],
+                                                  falloff=falloff)
+    reference = brush.apply(sphere[0], flow=False)
+    gap = np.linalg.norm(session.shown() - reference, axis=1).max()
+    assert gap < session.tolerance
+    assert np.abs(session.shown() - sphere[0]).max() > 1e-3
+    assert isinstance(brush, brushes.Brush)
+
+
+def test_release_commits_exactly_the_recipe_stroke(session, sphere):
+    from brushes.recipe import apply_stroke, load_recipe
+    _drag(session, (W / 2, H / 2), (W / 2 + 30, H / 2 - 20))
+    preview = session.shown().copy()
+    session.release(W / 2 + 30, H / 2 - 20, LEFT)
+    stroke = session.history.applied[0]
+    assert stroke["brush"] == "grab" and stroke.get("flow", True) is True
+    expected = apply_stroke(sphere[0], stroke)
+    np.testing.assert_array_equal(session.vertices, expected)
+    np.testing.assert_array_equal(session.shown(), expected)
+    assert np.abs(preview - expected).max() > 0  # the preview was the cheaper one-step field
+    message = session.save_recipe()
+    path = message.split(": ", 1)[1]
+    np.testing.assert_array_equal(load_recipe(path).apply(sphere[0]), expected)
+    assert session.status()["volume_change"] == pytest.approx(
+        mesh_volume(expected, sphere[1]) / mesh_volume(*sphere) - 1)
+
+
+def test_click_without_motion_and_cancel_make_no_stroke(session, sphere):
+    session.press(W / 2, H / 2, LEFT)
+    session.release(W / 2, H / 2, LEFT)
+    _drag(session, (W / 2, H / 2), (W / 2 + 30, H / 2))
+    session.key("ESCAPE")
+    session.release(W / 2 + 30, H / 2, LEFT)
+    assert session.history.position == 0
+    np.testing.assert_array_equal(session.shown(), sphere[0])
+
+
+def test_mirrored_stroke_is_symmetric(session, sphere):
+    # The icosphere is symmetric across x = 0; a mirrored stroke must keep it so.
+    index = _mirror_map(sphere[0])
+    session.key("BACKSLASH")
+    _drag(session, (W / 2 + 40, H / 2), (W / 2 + 70, H / 2 + 20))
+    preview = session.shown().copy()
+    session.release(W / 2 + 70, H / 2 + 20, LEFT)
+    assert session.history.applied[0]["mirror"] == {"normal": [1.0, 0.0, 0.0],
+                                                    "point": [0.0, 0.0, 0.0]}
+    for positions in (preview, np.asarray(session.vertices)):
+        reflected = positions[index] * [-1, 1, 1]
+        np.testing.assert_allclose(positions, reflected, atol=1e-9)
+        assert np.abs(positions - sphere[0]).max() > 1e-3
+
+
+def test_masked_vertices_stay_and_pins_go_into_the_stroke(session, sphere):
+    vertices = sphere[0]
+    session.key("_6")
+    for _ in range(4):  # paint the hold up to 1 around the middle of the view
+        session.press(W / 2, H / 2, LEFT)
+        session.release(W / 2, H / 2, LEFT)
+    held = session.hold >= 1.0
+    assert held.sum() >= 3
+    session.key("_5")
+    session.press(W / 2 - 60, H / 2 + 40, LEFT)
+    session.release(W / 2 - 60, H / 2 + 40, LEFT)
+    pin = session.pins[0].tolist()
+    session.key("_1")
+    _drag(session, (W / 2 + 20, H / 2 + 10), (W / 2 + 60, H / 2 + 30))
+    session.release(W / 2 + 60, H / 2 + 30, LEFT)
+    stroke = session.history.applied[0]
+    assert stroke["pins"] == [pin]
+    np.testing.assert_allclose(stroke["mask"]["weights"], 1 - session.hold)
+    moved = np.linalg.norm(np.asarray(session.vertices) - vertices, axis=1)
+    assert moved[held].max() == 0.0  # brushes scale motion by the mask: weight 0 holds still
+    assert moved.max() > 1e-3

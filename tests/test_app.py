@@ -1,0 +1,249 @@
+"""viewer.app: a headless window driven by synthetic pyglet events.
+
+pyglet chooses headless (EGL) or windowed OpenGL when ``pyglet.gl`` is first imported, so each
+scenario runs in a fresh subprocess that sets ``pyglet.options["headless"]`` first; this test
+process never imports pyglet's window or GL modules. Events go through
+``window.dispatch_event`` exactly as pyglet's event loop delivers them.
+"""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+import trimesh
+
+ROOT = Path(__file__).resolve().parents[1]
+W, H = 320, 240
+
+# Shared prelude of every scenario: a headless viewer on MESH and helpers to send events.
+PRELUDE = f"""
+import json, sys
+import numpy as np
+import pyglet
+pyglet.options["headless"] = True
+pyglet.options["debug_gl"] = False
+from pyglet.window import key, mouse
+from viewer.app import open_viewer
+
+W, H = {W}, {H}
+
+def send(viewer, *event):
+    viewer.window.dispatch_event(*event)
+    viewer.window.dispatch_events()   # outside pyglet.app.run events wait in a queue
+
+def drag(viewer, start, end, steps=6, button=mouse.LEFT, modifiers=0):
+    (x0, y0), (x1, y1) = start, end
+    send(viewer, "on_mouse_motion", x0, y0, 0, 0)
+    send(viewer, "on_mouse_press", x0, y0, button, modifiers)
+    px, py = x0, y0
+    for i in range(1, steps + 1):
+        x = x0 + (x1 - x0) * i / steps
+        y = y0 + (y1 - y0) * i / steps
+        send(viewer, "on_mouse_drag", x, y, x - px, y - py, button, modifiers)
+        send(viewer, "on_draw")
+        px, py = x, y
+    send(viewer, "on_mouse_release", x1, y1, button, modifiers)
+
+def camera_state(viewer):
+    c = viewer.session.camera
+    return {{"target": c.target.tolist(), "distance": c.distance, "yaw": c.yaw,
+            "pitch": c.pitch, "fov_y": c.fov_y}}
+
+def frame(viewer):
+    viewer.window.switch_to()
+    send(viewer, "on_draw")
+    data = pyglet.image.get_buffer_manager().get_color_buffer().get_image_data()
+    rgba = np.frombuffer(data.get_data("RGBA", data.width * 4), np.uint8)
+    return rgba.reshape(data.height, data.width, 4)[::-1, :, :3].copy()
+"""
+
+
+def _run(body, *, timeout=240):
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    code = PRELUDE + textwrap.dedent(body)
+    result = subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env,
+                            capture_output=True, text=True, timeout=timeout)
+    assert result.returncode == 0, result.stderr[-3000:]
+    return result.stdout
+
+
+def _camera(state):
+    from viewer.camera import OrbitCamera
+    return OrbitCamera(target=state["target"], distance=state["distance"], yaw=state["yaw"],
+                       pitch=state["pitch"], fov_y=state["fov_y"])
+
+
+@pytest.fixture
+def ball(tmp_path):
+    """A small closed mesh file in a fresh folder (journals and outputs land beside it)."""
+    path = tmp_path / "ball.obj"
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    mesh.export(path)
+    return path
+
+
+def test_scripted_drag_gives_the_recipe_and_mesh_of_the_api(ball, tmp_path):
+    out = _run(f"""
+        viewer = open_viewer({str(ball)!r}, size=(W, H), visible=False)
+        s = viewer.session
+        camera = camera_state(viewer)
+        radius = s.radius
+        drag(viewer, (W / 2 + 10, H / 2 + 5), (W / 2 + 50, H / 2 + 30))
+        send(viewer, "on_key_press", key.S, key.MOD_CTRL)     # save the recipe
+        send(viewer, "on_key_press", key.E, key.MOD_CTRL)     # export the posed mesh
+        np.save({str(tmp_path / "viewer.npy")!r}, np.asarray(s.vertices))
+        print(json.dumps({{"camera": camera, "radius": radius, "size": [s.width, s.height],
+                          "strokes": s.history.applied, "message": s.message}}))
+    """)
+    state = json.loads(out.strip().splitlines()[-1])
+    assert state["size"] == [W, H]
+
+    # The same stroke through the public API, computed here from the camera at the press.
+    from brushes.meshio import load_mesh
+    from brushes.recipe import Stroke, load_recipe
+    from viewer import gesture
+    from viewer.picking import Picker
+    doc = load_mesh(ball)
+    camera = _camera(state["camera"])
+    x0, y0, x1, y1 = W / 2 + 10, H / 2 + 5, W / 2 + 50, H / 2 + 30
+    hit = Picker(doc.vertices, doc.faces).pick(*camera.ray(x0, y0, W, H))
+    assert hit.hit
+    params = gesture.grab(camera, hit.point, state["radius"], (x0, y0), (x1, y1), W, H)
+    params.pop("kind")
+    stroke = Stroke("grab", {**params, "poisson": 0.5, "falloff": "wide"})
+    expected = stroke.apply(doc.vertices)
+
+    assert len(state["strokes"]) == 1
+    recorded = state["strokes"][0]
+    assert recorded["brush"] == "grab"
+    np.testing.assert_allclose(recorded["move"], params["move"], rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(recorded["center"], params["center"], rtol=1e-12, atol=1e-15)
+    viewer_vertices = np.load(tmp_path / "viewer.npy")
+    np.testing.assert_allclose(viewer_vertices, expected, rtol=0, atol=1e-12)
+    assert np.abs(viewer_vertices - doc.vertices).max() > 1e-3  # the drag did move the mesh
+
+    # The saved recipe replays to the same mesh; the exported mesh holds it.
+    recipe = load_recipe(tmp_path / "ball-recipe.json")
+    np.testing.assert_array_equal(recipe.apply(doc.vertices), viewer_vertices)
+    exported = load_mesh(tmp_path / "ball-posed.obj")
+    np.testing.assert_allclose(exported.vertices, viewer_vertices, atol=1e-6)
+
+
+def test_undo_redo_round_trip(ball, tmp_path):
+    out = _run(f"""
+        viewer = open_viewer({str(ball)!r}, size=(W, H), visible=False)
+        s = viewer.session
+        rest = np.array(s.vertices)
+        send(viewer, "on_key_press", key._2, 0)               # twist
+        drag(viewer, (W / 2, H / 2), (W / 2 + 60, H / 2))
+        send(viewer, "on_key_press", key._1, 0)               # grab
+        drag(viewer, (W / 2 - 20, H / 2 + 20), (W / 2 - 40, H / 2 + 60))
+        two = np.array(s.vertices)
+        send(viewer, "on_key_press", key.Z, key.MOD_CTRL)
+        send(viewer, "on_key_press", key.Z, key.MOD_CTRL)
+        back = np.array(s.vertices)
+        send(viewer, "on_key_press", key.Z, key.MOD_CTRL | key.MOD_SHIFT)
+        send(viewer, "on_key_press", key.Y, key.MOD_CTRL)
+        again = np.array(s.vertices)
+        np.savez({str(tmp_path / "undo.npz")!r}, rest=rest, two=two, back=back, again=again)
+        print(json.dumps({{"kinds": [x["brush"] for x in s.history.applied],
+                          "position": s.history.position}}))
+    """)
+    state = json.loads(out.strip().splitlines()[-1])
+    assert state == {"kinds": ["twist", "grab"], "position": 2}
+    a = np.load(tmp_path / "undo.npz")
+    assert np.abs(a["two"] - a["rest"]).max() > 1e-3
+    np.testing.assert_array_equal(a["back"], a["rest"])
+    np.testing.assert_array_equal(a["again"], a["two"])
+
+
+def test_journal_recovery_after_the_process_is_killed(ball, tmp_path):
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    ready = tmp_path / "ready.npy"
+    body = PRELUDE + textwrap.dedent(f"""
+        import time
+        viewer = open_viewer({str(ball)!r}, size=(W, H), visible=False)
+        drag(viewer, (W / 2, H / 2), (W / 2 + 40, H / 2 + 20))
+        send(viewer, "on_key_press", key._3, 0)               # scale
+        drag(viewer, (W / 2 - 30, H / 2 - 10), (W / 2 - 30, H / 2 + 40))
+        send(viewer, "on_key_press", key._1, 0)
+        drag(viewer, (W / 2 + 30, H / 2 - 30), (W / 2 + 50, H / 2 - 50))
+        send(viewer, "on_key_press", key.Z, key.MOD_CTRL)     # the last grab is undone
+        np.save({str(tmp_path / "state.npy")!r}, np.asarray(viewer.session.vertices))
+        import os
+        os.replace({str(tmp_path / "state.npy")!r}, {str(ready)!r})
+        while True:                                           # killed here, mid-session
+            time.sleep(1)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", body], cwd=ROOT, env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    try:
+        deadline = time.monotonic() + 240
+        while not ready.exists():
+            assert proc.poll() is None, proc.stderr.read().decode()[-3000:]
+            assert time.monotonic() < deadline, "the viewer never got ready"
+            time.sleep(0.2)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    expected = np.load(ready)
+    assert (tmp_path / "ball.obj.pliant-journal").exists()
+
+    # recover=True replays at once; without it the journal is offered and Enter replays.
+    out = _run(f"""
+        viewer = open_viewer({str(ball)!r}, recover=True, size=(W, H), visible=False)
+        np.save({str(tmp_path / "recovered.npy")!r}, np.asarray(viewer.session.vertices))
+        print(json.dumps([viewer.session.history.position, len(viewer.session.history.strokes)]))
+        offered = open_viewer({str(ball)!r}, size=(W, H), visible=False)
+        before = offered.session.pending_recovery is not None
+        send(offered, "on_key_press", key.ENTER, 0)
+        np.save({str(tmp_path / "offered.npy")!r}, np.asarray(offered.session.vertices))
+        print(json.dumps([before, offered.session.message]))
+    """)
+    lines = out.strip().splitlines()
+    assert json.loads(lines[-2]) == [2, 3]  # two applied, the undone grab in the redo tail
+    before, message = json.loads(lines[-1])
+    assert before and message == "recovered 2 strokes"
+    np.testing.assert_array_equal(np.load(tmp_path / "recovered.npy"), expected)
+    np.testing.assert_array_equal(np.load(tmp_path / "offered.npy"), expected)
+
+
+def test_window_draws_the_model_help_and_keeps_esc(ball):
+    out = _run(f"""
+        from viewer import palette
+        viewer = open_viewer({str(ball)!r}, size=(W, H), visible=False)
+        plain = frame(viewer)
+        bg = np.round(np.array(palette.BACKGROUND) * 255)
+        covered = float((np.abs(plain.astype(int) - bg).max(axis=2) > 3).mean())
+        send(viewer, "on_key_press", key.F1, 0)
+        helped = frame(viewer)
+        changed = float((np.abs(helped.astype(int) - plain.astype(int)).max(axis=2) > 10).mean())
+        send(viewer, "on_key_press", key.ESCAPE, 0)
+        send(viewer, "on_key_press", key._4, 0)
+        print(json.dumps({{"covered": covered, "help_changed": changed,
+                          "closed": viewer.window.has_exit, "tool": viewer.session.tool,
+                          "corner": plain[0, -1].tolist(), "bg": bg.tolist()}}))
+    """)
+    state = json.loads(out.strip().splitlines()[-1])
+    assert state["covered"] > 0.1       # the model fills a good part of the window
+    assert state["help_changed"] > 0.05  # the panel covers a visible area
+    assert state["closed"] is False      # Esc cancels a stroke, it does not close the window
+    assert state["tool"] == "pinch"
+    assert state["corner"] == state["bg"]  # top-right corner: no model, no text
+
+
+def test_bindings_markdown_lists_every_binding():
+    from viewer.overlay import bindings_markdown
+    from viewer.session import BINDINGS
+    table = bindings_markdown(BINDINGS)
+    assert table.count("\n") == len(BINDINGS) + 1
+    plain = table.replace("\\<", "<").replace("\\>", ">")
+    for key, _, description in BINDINGS:
+        assert f"| `{key}` | {description} |" in plain
