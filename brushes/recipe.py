@@ -400,7 +400,18 @@ class Stroke:
 
     @classmethod
     def from_brush(cls, brush, *, flow=True, pins=None, mirror=None, mask=None) -> "Stroke":
-        """The stroke of an (unmirrored) brush object: ``Stroke(brush.kind, brush.params(), ...)``."""
+        """The stroke of a brush object: ``Stroke(brush.kind, brush.params(), ...)``.
+
+        A brush made by ``brushes.mirror`` gives its inner brush with the mirror plane.
+        """
+        from brushes.mirror import Mirrored
+
+        if isinstance(brush, Mirrored):
+            if mirror is not None:
+                raise ValueError("mirror: the brush is already mirrored")
+            p = brush.params()
+            mirror = {"normal": p["normal"], "point": p["point"]}
+            brush = brush.brush
         return cls(brush.kind, brush.params(), flow=flow, pins=pins, mirror=mirror, mask=mask)
 
     def to_dict(self) -> dict:
