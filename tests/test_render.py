@@ -147,3 +147,35 @@ def test_importing_the_gl_layer_does_not_import_pyglet():
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True,
                          text=True, check=True)
     assert out.stdout.strip() == "False"
+
+
+def test_face_cross_products_numba_agrees_with_numpy():
+    from viewer.render import _face_cross_numba, face_cross_products
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    rng = np.random.default_rng(1)
+    vertices = mesh.vertices + 0.05 * rng.normal(size=mesh.vertices.shape)
+    # Reference for both: trimesh's triangles cross products, (b - a) x (c - a).
+    reference = trimesh.triangles.cross(vertices[mesh.faces])
+    numpy_result = face_cross_products(vertices, mesh.faces, backend="numpy")
+    np.testing.assert_allclose(numpy_result, reference, atol=1e-14)
+    if _face_cross_numba() is None:
+        pytest.skip("numba is not importable here, so only the numpy backend was checked")
+    faces_f = np.asfortranarray(mesh.faces)
+    numba_result = face_cross_products(vertices.astype(np.float32), faces_f, backend="numba")
+    np.testing.assert_allclose(numba_result, reference, atol=1e-6)
+    np.testing.assert_array_equal(face_cross_products(vertices, mesh.faces, backend="numba"),
+                                  numpy_result)
+    with pytest.raises(ValueError, match="^backend"):
+        face_cross_products(vertices, mesh.faces, backend="gpu")
+
+
+def test_bench_drag_runs_headless():
+    # A tiny run of the drag benchmark in a fresh process (pyglet headless must come first).
+    code = ("from viewer.bench_drag import bench_drag;"
+            "r = bench_drag(3000, repeats=3);"
+            "print(r['n_vertices'], r['reach_fraction'], r['total_ms'] > 0)")
+    out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True,
+                         text=True, timeout=300)
+    assert out.returncode == 0, out.stderr[-2000:]
+    n, fraction, positive = out.stdout.split()
+    assert int(n) >= 3000 and 0 < float(fraction) <= 1 and positive == "True"

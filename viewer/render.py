@@ -3,7 +3,8 @@
 The pure half of this module (no OpenGL, importable without a display):
 
 * :func:`vertex_normals_operator` and :func:`vertex_normals`: area-weighted vertex normals as a
-  precomputed sparse vertex-face incidence matrix applied to the face cross products;
+  precomputed sparse vertex-face incidence matrix applied to the face cross products
+  (:func:`face_cross_products`, one fused numba pass when numba imports);
 * :func:`ring_points`: the brush outline, a camera-facing circle at the brush radius.
 
 The GL half (:class:`MeshRenderer`, :class:`MarkerRenderer`) needs a current OpenGL context,
@@ -16,6 +17,8 @@ Shaders are module-level strings; the palette is pasted in from :mod:`viewer.pal
 """
 
 import ctypes
+import functools
+import os
 
 import numpy as np
 import scipy.sparse
@@ -24,7 +27,7 @@ from viewer import palette
 from viewer.camera import as_gl
 
 __all__ = [
-    "vertex_normals_operator", "vertex_normals", "ring_points",
+    "vertex_normals_operator", "vertex_normals", "face_cross_products", "ring_points",
     "MeshRenderer", "MarkerRenderer", "RenderError",
     "MESH_VERTEX_SHADER", "MESH_FRAGMENT_SHADER", "MARKER_VERTEX_SHADER", "MARKER_FRAGMENT_SHADER",
 ]
@@ -85,12 +88,86 @@ def vertex_normals_operator(faces, n_vertices):
     return op
 
 
-def vertex_normals(op, vertices, faces, *, out=None, normalize=True):
+def _face_cross_numpy(vertices, faces, out):
+    """(b - a) x (c - a) per face with numpy; ``out`` (m, 3) of the vertices' dtype."""
+    # ndarray.take along axis 0 is several times faster than fancy indexing for (n, 3) rows.
+    a = vertices.take(faces[:, 0], axis=0)
+    e1 = vertices.take(faces[:, 1], axis=0)
+    e1 -= a
+    e2 = vertices.take(faces[:, 2], axis=0)
+    e2 -= a
+    tmp = np.empty(len(faces), dtype=vertices.dtype)
+    for i, (j, k) in enumerate(((1, 2), (2, 0), (0, 1))):
+        np.multiply(e1[:, j], e2[:, k], out=out[:, i])
+        np.multiply(e1[:, k], e2[:, j], out=tmp)
+        out[:, i] -= tmp
+    return out
+
+
+@functools.lru_cache(maxsize=1)
+def _face_cross_numba():
+    """The compiled face cross-product kernel, or None without numba or with
+    ``PLIANT_BACKEND=numpy`` (the switch the engine and picking use too)."""
+    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
+        return None
+    try:
+        import numba
+    except ImportError:
+        return None
+
+    @numba.njit(cache=True, nogil=True)
+    def face_cross(vertices, faces, out):
+        for f in range(faces.shape[0]):
+            ia, ib, ic = faces[f, 0], faces[f, 1], faces[f, 2]
+            ax, ay, az = vertices[ia, 0], vertices[ia, 1], vertices[ia, 2]
+            ux, uy, uz = vertices[ib, 0] - ax, vertices[ib, 1] - ay, vertices[ib, 2] - az
+            vx, vy, vz = vertices[ic, 0] - ax, vertices[ic, 1] - ay, vertices[ic, 2] - az
+            out[f, 0] = uy * vz - uz * vy
+            out[f, 1] = uz * vx - ux * vz
+            out[f, 2] = ux * vy - uy * vx
+        return out
+
+    return face_cross
+
+
+def face_cross_products(vertices, faces, *, out=None, backend=None):
+    """Twice the area times the unit normal of each face: ``(b - a) x (c - a)``.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float32 or float64
+    faces : (m, 3) int
+    out : (m, 3) array of the vertices' dtype, optional, keyword-only
+    backend : {"numba", "numpy", None}, keyword-only
+        None takes numba when it imports (one fused pass, no temporaries), else numpy.
+
+    Returns
+    -------
+    (m, 3) float32 or float64
+    """
+    if backend not in (None, "numba", "numpy"):
+        raise ValueError(f"backend: must be 'numba', 'numpy' or None, got {backend!r}")
+    shape = (len(faces), 3)
+    if out is None:
+        out = np.empty(shape, dtype=vertices.dtype)
+    elif out.shape != shape or out.dtype != vertices.dtype:
+        raise ValueError(f"out: must be a {vertices.dtype} array of shape {shape}, "
+                         f"got {out.dtype} {out.shape}")
+    kernel = None if backend == "numpy" else _face_cross_numba()
+    if backend == "numba" and kernel is None:
+        raise ValueError("backend: numba is not available (missing, or PLIANT_BACKEND=numpy)")
+    if kernel is None:
+        return _face_cross_numpy(vertices, faces, out)
+    return kernel(vertices, faces, out)
+
+
+def vertex_normals(op, vertices, faces, *, out=None, normalize=True, work=None, backend=None):
     """Unit area-weighted vertex normals.
 
     ``N_i = normalise( sum over faces f at i of (b_f - a_f) x (c_f - a_f) )``, the sum taken by
-    the sparse product ``op @ C``. A vertex with no faces, or whose faces cancel or are all
-    degenerate, gets the zero vector (the shader treats a zero normal as facing the viewer).
+    the sparse product ``op @ C`` (C from :func:`face_cross_products`). A vertex with no
+    faces, or whose faces cancel or are all degenerate, gets the zero vector (the shader
+    treats a zero normal as facing the viewer).
 
     Parameters
     ----------
@@ -100,11 +177,15 @@ def vertex_normals(op, vertices, faces, *, out=None, normalize=True):
         Positions. The work and the result use this dtype (float32 is about twice as fast).
     faces : (m, 3) int
         Triangles.
-    out : (n, 3) array of the same dtype, optional
+    out : (n, 3) array of the same dtype, optional, keyword-only
         Written in place and returned.
     normalize : bool, keyword-only
         False leaves the area-weighted sums unnormalised (the mesh shader normalises per
         vertex on the GPU, which saves the CPU a pass over every vertex while dragging).
+    work : (m, 3) array of the same dtype, optional, keyword-only
+        Reused for the face cross products (saves an allocation per frame).
+    backend : {"numba", "numpy", None}, keyword-only
+        See :func:`face_cross_products`.
 
     Returns
     -------
@@ -121,19 +202,7 @@ def vertex_normals(op, vertices, faces, *, out=None, normalize=True):
     if op.shape != (len(vertices), len(faces)):
         raise ValueError(f"op: must have shape ({len(vertices)}, {len(faces)}) for these "
                          f"vertices and faces, got {op.shape}")
-    # ndarray.take along axis 0 is several times faster than fancy indexing for (n, 3) rows.
-    a = vertices.take(faces[:, 0], axis=0)
-    e1 = vertices.take(faces[:, 1], axis=0)
-    e1 -= a
-    e2 = vertices.take(faces[:, 2], axis=0)
-    e2 -= a
-    cross = np.empty_like(e1)
-    np.multiply(e1[:, 1], e2[:, 2], out=cross[:, 0])
-    cross[:, 0] -= e1[:, 2] * e2[:, 1]
-    np.multiply(e1[:, 2], e2[:, 0], out=cross[:, 1])
-    cross[:, 1] -= e1[:, 0] * e2[:, 2]
-    np.multiply(e1[:, 0], e2[:, 1], out=cross[:, 2])
-    cross[:, 2] -= e1[:, 1] * e2[:, 0]
+    cross = face_cross_products(vertices, faces, out=work, backend=backend)
     summed = np.asarray(op @ cross, dtype=vertices.dtype)
     if out is None:
         out = summed
@@ -363,6 +432,7 @@ class MeshRenderer:
         self.magnitude_scale = 1.0
         self.hold_strength = 0.65
         self.normals = np.zeros((self.n_vertices, 3), dtype=np.float32)
+        self._face_work = np.empty((self.n_faces, 3), dtype=np.float32)
         self.set_positions(vertices)
         self.set_magnitude(None)
         self.set_hold(None)
@@ -388,7 +458,7 @@ class MeshRenderer:
             raise ValueError(f"vertices: must have {self.n_vertices} rows, got {len(vertices)}")
         if normals is None:
             vertex_normals(self.normal_operator, vertices, self.faces, out=self.normals,
-                           normalize=False)
+                           normalize=False, work=self._face_work)
         else:
             self.normals[:] = _as_f32(normals, (3,), "normals")
         self._upload(self._positions, vertices)

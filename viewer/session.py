@@ -542,15 +542,22 @@ class Session:
         center = np.asarray(hit.point, dtype=np.float64)
         offsets = base - center
         distance = np.sqrt(np.einsum("ij,ij->i", offsets, offsets))
+        # Vertices sorted by distance from the centre: the ones inside a reach are a prefix.
         order = np.argsort(distance, kind="stable")
+        inverse = np.empty_like(order)
+        inverse[order] = np.arange(len(order))
+        base_sorted = base.take(order, axis=0)
         drag = _Drag("stroke", start, kind=self.tool, center=center, normal=np.asarray(hit.normal),
-                     base=base, order=order, sorted_distance=distance[order], current=start,
-                     params=None, invert=bool(modifiers & MOD_SHIFT), touched=None,
-                     response=None, response_count=0, weights=None, touched_count=0)
+                     base=base, order=order, inverse=inverse, base_sorted=base_sorted,
+                     shown_sorted=base_sorted.copy(), sorted_distance=distance[order],
+                     current=start, params=None, invert=bool(modifiers & MOD_SHIFT),
+                     touched=None, touched_count=0, response=None, weights=None,
+                     weights_sorted=None)
         pins, mirror, mask = self._stroke_extras()
         drag.pins, drag.mirror, drag.mask = pins, mirror, mask
         if mask is not None:
             drag.weights = np.asarray(mask["weights"])
+            drag.weights_sorted = drag.weights[order]
         plane = self.mirror_plane()
         if plane is not None:
             normal, point = plane
@@ -579,67 +586,77 @@ class Session:
         brush = self._brush(drag)
         plane = self.mirror_plane()
         if plane is None:
+            # Work on the distance-sorted copy: the vertices within reach are its first
+            # `count` rows, so no scattered indexing is needed until the final reordering.
             count = self._within(drag.sorted_distance, brush.reach(self.tolerance))
-            idx = drag.order[:count]
             if drag.kind == "grab":
-                displacement = self._grab_response(drag, count) @ np.asarray(drag.params["move"])
+                displacement = self._grab_displacement(drag, count, drag.params["move"])
             else:
-                displacement = brush.displacement(drag.base[idx])
-            displacement = np.asarray(displacement, dtype=np.float64).reshape(-1, 3)
-            if drag.weights is not None:
-                displacement *= drag.weights[idx, None]
-            # The vertices moved last time beyond today's reach go back to the press positions.
-            stale = drag.order[count:drag.touched_count]
-            self._shown[stale] = drag.base[stale]
+                displacement = brush.displacement(drag.base_sorted[:count])
+            if drag.weights_sorted is not None:
+                displacement = displacement * drag.weights_sorted[:count, None]
+            np.add(drag.base_sorted[:count], displacement, out=drag.shown_sorted[:count])
+            # Rows moved last time but now beyond the reach go back to the press positions.
+            drag.shown_sorted[count:drag.touched_count] = drag.base_sorted[count:drag.touched_count]
             drag.touched_count = count
-            self._shown[idx] = drag.base[idx] + displacement
+            np.take(drag.shown_sorted, drag.inverse, axis=0, out=self._shown)
             self.shown_version += 1
             return
-        else:
-            # Brush and reflection each move a vertex by less than tol/2 beyond their reach
-            # (the engine's bound), so together by less than tol outside both balls.
-            from brushes import mirror as mirror_brush
-            reach = brush.reach(0.5 * self.tolerance)
-            near = np.zeros(len(drag.base), dtype=bool)
-            near[drag.order[: self._within(drag.sorted_distance, reach)]] = True
-            near[drag.mirror_order[: self._within(drag.mirror_sorted_distance, reach)]] = True
-            idx = np.flatnonzero(near)
-            displacement = mirror_brush(brush, plane[0], plane[1]).displacement(drag.base[idx])
-        displacement = np.asarray(displacement, dtype=np.float64).reshape(-1, 3)
+        # Brush and reflection each move a vertex by less than tol/2 beyond their reach (the
+        # engine's bound), so together by less than tol outside both balls.
+        from brushes import mirror as mirror_brush
+        reach = brush.reach(0.5 * self.tolerance)
+        near = np.zeros(len(drag.base), dtype=bool)
+        near[drag.order[: self._within(drag.sorted_distance, reach)]] = True
+        near[drag.mirror_order[: self._within(drag.mirror_sorted_distance, reach)]] = True
+        idx = np.flatnonzero(near)
+        points = drag.base.take(idx, axis=0)
+        displacement = mirror_brush(brush, plane[0], plane[1]).displacement(points)
         if drag.weights is not None:
             displacement = displacement * drag.weights[idx, None]
-        self._show_region(drag, idx, drag.base[idx] + displacement)
+        if drag.touched is not None:
+            self._shown[drag.touched] = drag.base.take(drag.touched, axis=0)
+        self._shown[idx] = points + displacement
+        drag.touched = idx
+        self.shown_version += 1
 
     @staticmethod
     def _within(sorted_distance, reach):
         """How many of the ascending distances lie below ``reach`` (all of them for inf)."""
         return int(np.searchsorted(sorted_distance, float(reach), side="left"))
 
-    def _grab_response(self, drag, count):
-        """Rows ``order[:count]`` of the grab response at the press centre, (count*3, 3)."""
-        if count > drag.response_count:
+    def _grab_displacement(self, drag, count, move):
+        """Grab preview on the first ``count`` distance-sorted vertices: ``K @ move`` with the
+        response K of the press centre, (count, 3) float32.
+
+        K is computed lazily for as many vertices as the reach has asked for so far and kept as
+        three float32 columns ``K[:, :, j]``, so the product is three multiply-adds (no BLAS
+        call, whose threads stall on a busy machine).
+        """
+        done = 0 if drag.response is None else drag.response.shape[1]
+        if count > done:
             import brushes
             probe = brushes.Grab(drag.center, self.radius, [0.0, 0.0, 0.0],
                                  poisson=self.poisson["grab"], falloff=self.falloff)
-            extra = probe.response(drag.base[drag.order[drag.response_count:count]])
-            extra = np.asarray(extra, dtype=np.float64).reshape(-1, 3)
-            drag.response = extra if drag.response is None else np.vstack([drag.response, extra])
-            drag.response_count = count
-        return drag.response[: 3 * count]
+            extra = np.asarray(probe.response(drag.base_sorted[done:count]), dtype=np.float32)
+            extra = np.ascontiguousarray(extra.transpose(2, 0, 1))  # (3, k, 3): K[:, :, j]
+            drag.response = extra if drag.response is None else np.concatenate(
+                [drag.response, extra], axis=1)
+            drag.scratch = np.empty((2, len(drag.base), 3), dtype=np.float32)
+        k = drag.response[:, :count]
+        out, tmp = drag.scratch[0, :count], drag.scratch[1, :count]
+        m = np.asarray(move, dtype=np.float32)
+        np.multiply(k[0], m[0], out=out)
+        for j in (1, 2):
+            np.multiply(k[j], m[j], out=tmp)
+            out += tmp
+        return out
 
     def _preview_exact(self, drag):
         from brushes.recipe import Stroke
         stroke = self._make_stroke(drag)
         points = stroke.apply(drag.base, groups=self.groups)
         self._shown = points
-        self.shown_version += 1
-
-    def _show_region(self, drag, idx, positions):
-        """Show ``positions`` at vertices ``idx`` and the press positions elsewhere."""
-        if drag.touched is not None:
-            self._shown[drag.touched] = drag.base[drag.touched]
-        self._shown[idx] = positions
-        drag.touched = idx
         self.shown_version += 1
 
     def _brush(self, drag):
