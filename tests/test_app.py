@@ -65,10 +65,10 @@ def frame(viewer):
 """
 
 
-def _run(body, *, timeout=240):
+def _run(body, *, timeout=240, cwd=ROOT):
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     code = PRELUDE + textwrap.dedent(body)
-    result = subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env,
+    result = subprocess.run([sys.executable, "-c", code], cwd=cwd, env=env,
                             capture_output=True, text=True, timeout=timeout)
     assert result.returncode == 0, result.stderr[-3000:]
     return result.stdout
@@ -237,6 +237,25 @@ def test_window_draws_the_model_help_and_keeps_esc(ball):
     assert state["closed"] is False      # Esc cancels a stroke, it does not close the window
     assert state["tool"] == "pinch"
     assert state["corner"] == state["bg"]  # top-right corner: no model, no text
+
+
+def test_no_mesh_opens_the_bundled_model_and_writes_only_to_the_current_folder(tmp_path):
+    models = ROOT / "models"
+    if not (models / "mascot.obj").is_file():
+        pytest.skip("the bundled model models/mascot.obj is not in this checkout")
+    before = sorted(os.listdir(models))
+    out = _run("""
+        viewer = open_viewer(None, size=(W, H), visible=False)
+        s = viewer.session
+        drag(viewer, (W / 2, H / 2), (W / 2 + 15, H / 2 + 15))
+        send(viewer, "on_key_press", key.S, key.MOD_CTRL)
+        print(json.dumps([len(s.rest), s.history.position, s.message]))
+    """, cwd=tmp_path)
+    n, position, message = json.loads(out.strip().splitlines()[-1])
+    assert n > 1000 and position == 1
+    assert sorted(os.listdir(models)) == before  # nothing written into the package
+    assert (tmp_path / "mascot.obj.pliant-journal").is_file()
+    assert (tmp_path / "mascot-recipe.json").is_file() and "mascot-recipe.json" in message
 
 
 def test_bindings_markdown_lists_every_binding():

@@ -39,24 +39,27 @@ def _bundled_model():
 
 
 def load_model(mesh_path=None):
-    """What to open: ``(vertices, faces, doc, mesh_path, out_dir, journal)``.
+    """What to open, as keyword arguments of :class:`viewer.session.Session` plus
+    ``vertices`` and ``faces``.
 
     mesh_path : str or os.PathLike or None
-        A mesh file; None opens the bundled mascot (outputs to the current folder, journalled
-        beside the model only if its folder is writable), else a generated sphere (nothing
-        journalled).
+        A mesh file (outputs and journal beside it); None opens the bundled mascot (outputs
+        and journal in the current folder, nothing written into the package), or a generated
+        sphere when the model is not installed (outputs in the current folder, no journal).
     """
     from brushes.meshio import load_mesh
     if mesh_path is not None:
         doc = load_mesh(mesh_path)
-        return doc.vertices, doc.faces, doc, os.fspath(mesh_path), None, True
+        return {"vertices": doc.vertices, "faces": doc.faces, "doc": doc,
+                "mesh_path": os.fspath(mesh_path)}
     bundled = _bundled_model()
     if bundled is not None:
         doc = load_mesh(bundled)
-        writable = os.access(bundled.parent, os.W_OK)
-        return doc.vertices, doc.faces, doc, str(bundled), os.getcwd(), writable
+        return {"vertices": doc.vertices, "faces": doc.faces, "doc": doc,
+                "mesh_path": str(bundled), "out_dir": os.getcwd(),
+                "journal_anchor": os.path.join(os.getcwd(), MODEL_NAME)}
     vertices, faces = sphere_mesh()
-    return vertices, faces, None, None, os.getcwd(), False
+    return {"vertices": vertices, "faces": faces, "out_dir": os.getcwd(), "journal": False}
 
 
 class Viewer:
@@ -182,7 +185,9 @@ class Viewer:
         if session.pins:
             self.markers.points(np.asarray(session.pins), palette.PIN, size=10.0)
         gl.glDisable(gl.GL_DEPTH_TEST)
-        self.status.text = "\n".join(overlay.status_lines(session.status()))
+        text = "\n".join(overlay.status_lines(session.status()))
+        if text != self.status.text:  # a new layout only when the words change
+            self.status.text = text
         self.status.draw()
         if session.show_help:
             self.help.y = height - 24
@@ -207,7 +212,7 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
         False for tests and headless use.
     """
     import pyglet
-    vertices, faces, doc, path, out_dir, journal = load_model(mesh_path)
+    model = load_model(mesh_path)
     # Ask for 8 bits per channel: some drivers (EGL pbuffers among them) otherwise hand out
     # 16-bit colour, which bands the shading.
     base = dict(double_buffer=True, depth_size=24, red_size=8, green_size=8, blue_size=8,
@@ -224,8 +229,7 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
     if window is None:
         window = pyglet.window.Window(width=size[0], height=size[1], caption=TITLE,
                                       resizable=True, visible=visible)
-    session = Session(vertices, faces, doc=doc, mesh_path=path, out_dir=out_dir,
-                      size=window.get_size(), journal=journal)
+    session = Session(model.pop("vertices"), model.pop("faces"), size=window.get_size(), **model)
     if recover:
         try:
             session.message = session.recover()

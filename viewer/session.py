@@ -198,10 +198,14 @@ class Session:
         Window size in window units.
     journal : bool, keyword-only
         Journal finished strokes (default True when ``mesh_path`` is given).
+    journal_anchor : str or os.PathLike, optional, keyword-only
+        The file the journal is named after (``<anchor>.pliant-journal``); default
+        ``mesh_path``. The viewer anchors the bundled model's journal in the current folder
+        so that nothing is written into the installed package.
     """
 
     def __init__(self, vertices, faces, *, doc=None, mesh_path=None, out_dir=None,
-                 size=(1024, 768), journal=True):
+                 size=(1024, 768), journal=True, journal_anchor=None):
         from brushes.meshio import MeshDoc
         from viewer.history import History
         from viewer.picking import Picker
@@ -256,11 +260,12 @@ class Session:
 
         self.journal = None
         self.pending_recovery = None
-        self._journal_enabled = bool(journal) and self.mesh_path is not None
-        if self._journal_enabled:
+        anchor = journal_anchor if journal_anchor is not None else self.mesh_path
+        self.journal_anchor = None if anchor is None else os.path.abspath(os.fspath(anchor))
+        if journal and self.journal_anchor is not None:
             from viewer.journal import Journal, find_journal
-            self.journal = Journal(self.mesh_path, rest)
-            found = find_journal(self.mesh_path)
+            self.journal = Journal(self.journal_anchor, rest)
+            found = find_journal(self.journal_anchor)
             if found:
                 self.pending_recovery = found
                 self.message = ("unsaved strokes from an interrupted session were found: Enter "
@@ -391,6 +396,7 @@ class Session:
                 drag.invert = bool(modifiers & MOD_SHIFT)
                 self._update_stroke((float(x), float(y)), drag=drag)
             self._commit(drag)
+            self.motion(x, y)  # the outline follows the surface now under the cursor
 
     def scroll(self, x, y, scroll_y, modifiers=0):
         """Mouse wheel: zoom, or with Shift the brush radius."""
@@ -728,9 +734,9 @@ class Session:
         """Replay the journal of an interrupted session onto the rest mesh and keep appending
         to it. Returns a message."""
         from viewer.journal import Journal, find_journal, read_events, replay_events
-        if self.mesh_path is None:
+        if self.journal_anchor is None:
             raise ValueError("recover: no mesh file, so no journal")
-        path = find_journal(self.mesh_path)
+        path = find_journal(self.journal_anchor)
         if path is None:
             self.pending_recovery = None
             return "no journal to recover"
@@ -741,7 +747,7 @@ class Session:
         for stroke in strokes:
             self.history.push(stroke)
         points = self.history.goto(position)
-        self.journal = Journal(self.mesh_path, self.rest, resume=True)
+        self.journal = Journal(self.journal_anchor, self.rest, resume=True)
         self.pending_recovery = None
         self._after_change(points)
         return f"recovered {position} stroke{'s' if position != 1 else ''}"
