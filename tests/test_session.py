@@ -335,3 +335,29 @@ def test_masked_vertices_stay_and_pins_go_into_the_stroke(session, sphere):
     moved = np.linalg.norm(np.asarray(session.vertices) - vertices, axis=1)
     assert moved[held].max() == 0.0  # brushes scale motion by the mask: weight 0 holds still
     assert moved.max() > 1e-3
+
+
+def test_exports_use_the_command_writers(session, sphere, tmp_path):
+    # Read back: the .npz through the project's apply_delta, the .glb's JSON chunk by the
+    # glTF 2.0 binary layout (12-byte header, then a length/type-prefixed JSON chunk).
+    import json
+    import struct
+    from brushes.correctives import apply_delta
+    from brushes.meshio import load_mesh
+    _drag(session, (W / 2, H / 2), (W / 2 + 25, H / 2 + 25))
+    session.release(W / 2 + 25, H / 2 + 25, LEFT)
+    posed = np.asarray(session.vertices)
+    assert session.key("D", MOD_CTRL) == "export_delta"
+    assert session.message.startswith("corrective shape written")
+    np.testing.assert_allclose(apply_delta(sphere[0], tmp_path / "sphere-pose.npz"), posed,
+                               atol=1e-6)  # the deltas are stored as float32
+    data = (tmp_path / "sphere-pose.glb").read_bytes()
+    magic, version, _ = struct.unpack_from("<4sII", data, 0)
+    length, kind = struct.unpack_from("<I4s", data, 12)
+    assert (magic, version, kind) == (b"glTF", 2, b"JSON")
+    gltf = json.loads(data[20:20 + length])
+    (primitive,) = gltf["meshes"][0]["primitives"]
+    (target,) = primitive["targets"]
+    assert gltf["accessors"][target["POSITION"]]["count"] == len(sphere[0])
+    assert session.key("E", MOD_CTRL) == "export_mesh"
+    np.testing.assert_allclose(load_mesh(tmp_path / "sphere-posed.obj").vertices, posed, atol=1e-6)
