@@ -361,3 +361,15 @@ def test_exports_use_the_command_writers(session, sphere, tmp_path):
     assert gltf["accessors"][target["POSITION"]]["count"] == len(sphere[0])
     assert session.key("E", MOD_CTRL) == "export_mesh"
     np.testing.assert_allclose(load_mesh(tmp_path / "sphere-posed.obj").vertices, posed, atol=1e-6)
+
+
+def test_settings_changed_mid_drag_apply_to_the_next_stroke(session):
+    r = session.radius
+    _drag(session, (W / 2, H / 2), (W / 2 + 20, H / 2))
+    session.scroll(0, 0, 3, MOD_SHIFT)
+    session.key("SEMICOLON")
+    session.drag(W / 2 + 30, H / 2, 10, 0, LEFT)
+    session.release(W / 2 + 30, H / 2, LEFT)
+    stroke = session.history.applied[0]
+    assert stroke["radius"] == r and stroke["falloff"] == "wide"
+    assert session.radius == pytest.approx(r * 1.1**3) and session.falloff == "medium"

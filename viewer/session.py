@@ -302,7 +302,7 @@ class Session:
             center = np.asarray(drag.center)
             if drag.params is not None and drag.params.get("move") is not None:
                 center = center + np.asarray(drag.params["move"])
-            return center, self.radius
+            return center, drag.radius
         if self.hover is None or self.tool == "pin":
             return None
         return np.asarray(self.hover), self.radius
@@ -339,7 +339,7 @@ class Session:
         self.width, self.height = max(float(width), 1.0), max(float(height), 1.0)
 
     def pick(self, x, y):
-        """The :class:`viewer.picking.Hit` under window point (x, y) on the shown surface."""
+        """The :class:`viewer.picking.Hit` under window point (x, y) on the committed surface."""
         origin, direction = self.camera.ray(x, y, self.width, self.height)
         return self.picker.pick(origin, direction)
 
@@ -527,10 +527,12 @@ class Session:
         from brushes.recipe import apply_stroke
         return apply_stroke(points, stroke, groups=self.groups)
 
-    def _brush_kwargs(self, params):
-        kwargs = {k: v for k, v in params.items() if k != "kind"}
-        kwargs["poisson"] = self.poisson[params["kind"]]
-        kwargs["falloff"] = self.falloff
+    @staticmethod
+    def _brush_kwargs(drag):
+        """The brush's keyword arguments: the gesture's, plus the material fixed at the press."""
+        kwargs = {k: v for k, v in drag.params.items() if k != "kind"}
+        kwargs["poisson"] = drag.poisson
+        kwargs["falloff"] = drag.falloff
         return kwargs
 
     def _stroke_extras(self):
@@ -558,7 +560,10 @@ class Session:
                      shown_sorted=base_sorted.copy(), sorted_distance=distance[order],
                      current=start, params=None, invert=bool(modifiers & MOD_SHIFT),
                      touched=None, touched_count=0, response=None, weights=None,
-                     weights_sorted=None)
+                     weights_sorted=None,
+                     # Settings are fixed for the whole stroke (a key or wheel mid-drag
+                     # changes the next stroke, not this one or its cached response).
+                     radius=self.radius, falloff=self.falloff, poisson=self.poisson[self.tool])
         pins, mirror, mask = self._stroke_extras()
         drag.pins, drag.mirror, drag.mask = pins, mirror, mask
         if mask is not None:
@@ -575,7 +580,7 @@ class Session:
         self._drag = drag
 
     def _stroke_params(self, drag, current):
-        params = gesture.drag_params(drag.kind, self.camera, drag.center, self.radius, drag.start,
+        params = gesture.drag_params(drag.kind, self.camera, drag.center, drag.radius, drag.start,
                                      current, self.width, self.height, invert=drag.invert)
         return params
 
@@ -642,8 +647,8 @@ class Session:
         done = 0 if drag.response is None else drag.response.shape[1]
         if count > done:
             import brushes
-            probe = brushes.Grab(drag.center, self.radius, [0.0, 0.0, 0.0],
-                                 poisson=self.poisson["grab"], falloff=self.falloff)
+            probe = brushes.Grab(drag.center, drag.radius, [0.0, 0.0, 0.0],
+                                 poisson=drag.poisson, falloff=drag.falloff)
             extra = np.asarray(probe.response(drag.base_sorted[done:count]), dtype=np.float32)
             extra = np.ascontiguousarray(extra.transpose(2, 0, 1))  # (3, k, 3): K[:, :, j]
             drag.response = extra if drag.response is None else np.concatenate(
@@ -667,11 +672,11 @@ class Session:
 
     def _brush(self, drag):
         from brushes import registry
-        return registry.lookup(drag.kind)(**self._brush_kwargs(drag.params))
+        return registry.lookup(drag.kind)(**self._brush_kwargs(drag))
 
     def _make_stroke(self, drag):
         from brushes.recipe import Stroke
-        kwargs = self._brush_kwargs(drag.params)
+        kwargs = self._brush_kwargs(drag)
         return Stroke(drag.kind, kwargs, flow=True, pins=drag.pins, mirror=drag.mirror,
                       mask=drag.mask)
 
