@@ -184,3 +184,59 @@ def test_case_table_covers_every_mixed_case():
         n_inside = bin(case).count("1")
         n_tris = int((table[case, :, 0, 0] >= 0).sum())
         assert n_tris == {0: 0, 1: 1, 2: 2, 3: 1, 4: 0}[n_inside]
+
+
+# --- the demo pose --------------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def posed(mesh):
+    from brushes.recipe import load_recipe
+
+    recipe = load_recipe(os.path.join(MODELS, "mascot-pose.json"))
+    return recipe, recipe.apply(np.asarray(mesh.vertices))
+
+
+def test_pose_recipe_is_tidy():
+    from brushes.recipe import dumps_recipe, load_recipe
+
+    path = os.path.join(MODELS, "mascot-pose.json")
+    recipe = load_recipe(path)
+    assert open(path, encoding="utf-8").read() == dumps_recipe(recipe)  # as save_recipe writes it
+    kinds = [s.kind for s in recipe]
+    assert "twist" in kinds and "grab" in kinds
+    for s in recipe:
+        if s.kind in ("grab", "twist"):
+            assert s.params["poisson"] == 0.5
+
+
+def test_pose_keeps_volume_and_moves_the_parts(mesh, posed):
+    recipe, p = posed
+    rest = np.asarray(mesh.vertices)
+    # volume by trimesh (independent of our quality report): Poisson's ratio 0.5 is the
+    # incompressible material (de Goes & James 2017, sec. 3), so the volume barely changes
+    after = trimesh.Trimesh(p, mesh.faces, process=False)
+    assert abs(after.volume / mesh.volume - 1.0) < 1e-3
+    assert np.isfinite(p).all()
+
+    joints = np.array([build.JOINTS[k] for k in ("hand_left", "tail_tip", "snout_tip",
+                                                 "ankle_left", "ankle_right", "hand_right")])
+    moved = recipe.apply(joints)
+    hand, tip, snout, ankles, other_hand = moved[0], moved[1], moved[2], moved[3:5], moved[5]
+    assert hand[1] - joints[0, 1] > 0.25  # the left arm is raised
+    assert tip[1] - joints[1, 1] > 0.1 and tip[2] - joints[1, 2] > 0.1  # the tail curls up, forward
+    # the head turns to its left (+X) about +Y: the snout's heading changes by > 15 degrees
+    turn = np.degrees(np.arctan2(snout[0], snout[2]) - np.arctan2(joints[2, 0], joints[2, 2]))
+    assert turn > 15.0
+    # feet and the other hand stay nearly put
+    assert np.abs(ankles - joints[3:5]).max() < 0.05
+    assert np.linalg.norm(other_hand - joints[5]) < 0.08
+
+
+def test_pose_turns_no_triangle_over(mesh, posed):
+    # A face folded back points against the smooth surface normal at its corners (trimesh's
+    # area-weighted vertex normals, averaged over the face's three corners).
+    _, p = posed
+    after = trimesh.Trimesh(p, mesh.faces, process=False)
+    vn = after.vertex_normals[after.faces].mean(axis=1)
+    assert np.all(np.einsum("ij,ij->i", after.face_normals, vn) > 0)
