@@ -45,6 +45,43 @@ class Lift:
         return points + u
 
 
+class Bump(brushes.Brush):
+    """The same bump as a ``brushes.Brush`` subclass: it inherits ``apply`` (the engine's flow).
+
+    u(x) = height * g(x) e_y with g = exp(-|x - c|^2 / r^2); J = e_y (grad u_y)^T with
+    grad u_y = -2 height g (x - c) / r^2. J has rank one, so its spectral norm is |grad u_y|,
+    largest at |x - c| = r / sqrt(2): sqrt(2) |height| exp(-1/2) / r (calculus by hand).
+    """
+
+    kind = "bump"
+
+    def __init__(self, center, radius, height):
+        self.center = np.asarray(center, dtype=np.float64)
+        self.radius = float(radius)
+        self.height = float(height)
+
+    def params(self):
+        return {"center": self.center.tolist(), "radius": self.radius, "height": self.height}
+
+    def displacement(self, points, out=None):
+        pts = np.asarray(points, dtype=np.float64)
+        g = np.exp(-np.sum((pts - self.center) ** 2, axis=1) / self.radius**2)
+        u = np.zeros_like(pts) if out is None else out
+        u[:] = 0.0
+        u[:, 1] = self.height * g
+        return u
+
+    def jacobian(self, points):
+        pts = np.asarray(points, dtype=np.float64)
+        g = np.exp(-np.sum((pts - self.center) ** 2, axis=1) / self.radius**2)
+        J = np.zeros((len(pts), 3, 3))
+        J[:, 1, :] = -2.0 * self.height * g[:, None] * (pts - self.center) / self.radius**2
+        return J
+
+    def lipschitz(self):
+        return np.sqrt(2.0) * abs(self.height) * np.exp(-0.5) / self.radius
+
+
 @pytest.fixture
 def fresh(monkeypatch):
     """Registry state as in a new process (entry points not yet read); restored afterwards."""
@@ -154,6 +191,27 @@ def test_entry_point_plugin_is_found_and_used_in_a_recipe(fresh, tmp_path, monke
     with pytest.raises(RecipeError, match=r"strokes\[0\]\.height: must be finite"):
         parse_recipe({"format": "pliant-recipe", "version": 1,
                       "strokes": [dict(stroke, height=float("inf"))]})
+
+
+def test_brush_subclass_plugin_uses_the_engine_flow(fresh, tmp_path, monkeypatch):
+    install(tmp_path, monkeypatch, {"bump": f"{__name__}:Bump"})
+    stroke = {"brush": "bump", "center": [0, 1, 0], "radius": 0.4, "height": 0.15}
+    pts = np.random.default_rng(9).uniform(-0.8, 1.8, size=(200, 3))
+    for flow in (True, False):
+        r = parse_recipe({"format": "pliant-recipe", "version": 1,
+                          "strokes": [dict(stroke, flow=flow, pins=[[0.0, 0.2, 0.0]])]})
+        want = Bump([0, 1, 0], 0.4, 0.15).apply(pts, flow=flow, pins=np.array([[0.0, 0.2, 0.0]]))
+        assert np.array_equal(r.apply(pts), want)
+    # flow=False without pins is points + u: the Gaussian by hand
+    r = parse_recipe({"format": "pliant-recipe", "version": 1,
+                      "strokes": [dict(stroke, flow=False)]})
+    g = np.exp(-np.sum((pts - [0, 1, 0]) ** 2, axis=1) / 0.16)
+    np.testing.assert_allclose(r.apply(pts), pts + np.outer(0.15 * g, [0, 1, 0]), rtol=0, atol=1e-15)
+    # the flow moves points along +Y only (the velocity has no x or z part), and by no more
+    # than the height (the speed is at most height over unit pseudo-time)
+    r = parse_recipe({"format": "pliant-recipe", "version": 1, "strokes": [stroke]})
+    moved = r.apply(pts) - pts
+    assert np.all(moved[:, [0, 2]] == 0) and moved[:, 1].max() <= 0.15
 
 
 def test_plugin_module_is_imported_only_when_looked_up(fresh, tmp_path, monkeypatch):
