@@ -40,7 +40,6 @@ import math
 import os
 import re
 from dataclasses import dataclass
-from typing import Mapping
 
 import numpy as np
 

@@ -18,7 +18,6 @@ A brush class is built from keyword arguments, ``cls(**params)``, and has
 
 from __future__ import annotations
 
-import importlib
 import importlib.metadata
 import re
 
