@@ -109,6 +109,9 @@ class MeshDoc:
         ``"absent"`` (file has no normals), ``"recomputed"`` or ``"kept"`` (left as stored).
     parts : tuple of MeshPart
         Named vertex slices; one part for single-mesh formats.
+    groups : dict of str -> (k,) int64
+        Named vertex groups, for masks: an OBJ's ``g`` groups (the vertices of the faces that
+        follow each ``g`` line) and a glTF's meshes (by mesh or node name).
     """
 
     vertices: np.ndarray
@@ -119,6 +122,7 @@ class MeshDoc:
     normals_on_save: str = "absent"
     parts: tuple = ()
     _source: object = field(default=None, repr=False)
+    groups: dict = field(default_factory=dict)
 
     @classmethod
     def from_arrays(cls, vertices, faces, *, uv=None) -> "MeshDoc":
@@ -521,13 +525,39 @@ def _load_obj(path, data: bytes) -> MeshDoc:
                 source.vn_old = _first_columns(nvals, ntok.counts, 3)
                 source.tri_vn = tri_vn
                 normals = "recomputed"
+    groups = {}
+    if len(fidx):
+        groups = _obj_groups(data, buf, kw, starts, ends, fidx, corners, corner_line)
     if len(faces) == 0:
         faces = np.zeros((0, 3), np.int64)
     name = os.path.splitext(os.path.basename(os.fspath(path)))[0]
     return MeshDoc(
         vertices, faces.astype(np.int64), os.fspath(path), "obj", uv, normals,
-        (MeshPart(name, 0, nv),), source,
+        (MeshPart(name, 0, nv),), source, groups,
     )
+
+
+def _obj_groups(data, buf, kw, starts, ends, fidx, corners, corner_line):
+    """{group name: vertex indices} from the ``g`` lines: each face belongs to the groups named
+    by the last ``g`` line before it (a ``g`` line may name several groups)."""
+    length = ends - kw
+    b1 = buf[np.minimum(kw + 1, len(buf) - 1)]
+    is_g = (buf[kw] == 103) & ((length == 1) | ((length > 1) & ((b1 == 32) | (b1 == 9))))
+    gidx = np.flatnonzero(is_g)
+    if not len(gidx):
+        return {}
+    owner = np.searchsorted(gidx, fidx, side="right") - 1  # per face line: which g line, -1 none
+    corner_owner = owner[corner_line]
+    groups = {}
+    for j, line in enumerate(gidx.tolist()):
+        names = data[int(kw[line]) + 1:int(ends[line])].decode("utf-8", "replace").split()
+        sel = corners[corner_owner == j]
+        if not len(sel):
+            continue
+        for name in names:
+            prev = groups.get(name)
+            groups[name] = sel if prev is None else np.concatenate([prev, sel])
+    return {k: np.unique(v).astype(np.int64) for k, v in groups.items()}
 
 
 def _resolve(ref, before, count, path, what):
@@ -1151,7 +1181,11 @@ def _gltf_doc(path, gltf, buffers, fmt, folder) -> MeshDoc:
     uv = np.concatenate(all_uv) if uv_ok and all_uv else None
     normals = "recomputed" if any(p.normal is not None for p in records) else "absent"
     source = _GltfSource(gltf, buffers, fmt == "glb", folder, records)
-    return MeshDoc(vertices, faces, os.fspath(path), fmt, uv, normals, tuple(parts), source)
+    groups = {}
+    for part in parts:
+        groups.setdefault(part.name, []).append(np.arange(part.start, part.stop, dtype=np.int64))
+    groups = {k: np.concatenate(v) for k, v in groups.items()}
+    return MeshDoc(vertices, faces, os.fspath(path), fmt, uv, normals, tuple(parts), source, groups)
 
 
 def _float_list(a):

@@ -630,3 +630,39 @@ def test_bench_synthetic_obj_and_ratio(tmp_path):
     np.testing.assert_allclose(load_mesh(p).vertices, ref.vertices, atol=0)
     r = bench_obj(400)
     assert r["vertices"] == 400 and r["ratio"] == r["ours_s"] / r["trimesh_s"]
+
+
+def test_obj_groups_name_the_vertices_of_their_faces(tmp_path):
+    # hand-made: faces after 'g left' use vertices 1-4, after 'g right both' vertices 3-6
+    text = ("v 0 0 0\nv 1 0 0\nv 1 1 0\nv 0 1 0\nv 2 0 0\nv 2 1 0\n"
+            "g left\nf 1 2 3\nf 1 3 4\n"
+            "g right both\nf 2 5 6 3\n")
+    path = tmp_path / "two.obj"
+    path.write_text(text)
+    doc = load_mesh(path)
+    assert sorted(doc.groups) == ["both", "left", "right"]
+    assert doc.groups["left"].tolist() == [0, 1, 2, 3]
+    assert doc.groups["right"].tolist() == [1, 2, 4, 5]
+    assert doc.groups["both"].tolist() == doc.groups["right"].tolist()
+
+
+def test_obj_groups_agree_with_trimesh_group_split():
+    # independent reader: trimesh's OBJ loader with split_groups gives each 'g' group's faces
+    import warnings
+
+    from trimesh.exchange.obj import load_obj
+
+    root = os.path.join(os.path.dirname(__file__), "..", "models", "mascot.obj")
+    doc = load_mesh(root)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with open(root, "rb") as fh:
+            loaded = load_obj(fh, split_groups=True, maintain_order=True)
+    theirs = {}
+    for name, geom in loaded["geometry"].items():
+        corners = np.asarray(geom["vertices"])[np.asarray(geom["faces"])].reshape(-1, 3)
+        theirs[name] = np.unique(np.round(corners, 9), axis=0)
+    assert sorted(theirs) == sorted(doc.groups)
+    for name, idx in doc.groups.items():
+        ours = np.unique(np.round(doc.vertices[idx], 9), axis=0)
+        assert np.array_equal(ours, theirs[name]), name
