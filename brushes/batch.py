@@ -24,7 +24,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
-__all__ = ["BatchError", "ClusterUnavailable", "Outcome", "plan", "pose_file", "run_batch"]
+__all__ = ["BatchError", "ClusterUnavailable", "Outcome", "describe", "interrupted", "plan",
+           "pose_file", "run_batch"]
 
 
 class BatchError(ValueError):
@@ -60,6 +61,21 @@ def describe(exc: BaseException) -> str:
         text = f"{type(exc).__name__}: {text}"
     lines = [" ".join(line.split()) for line in text.splitlines()]
     return "; ".join(line for line in lines if line)
+
+
+def interrupted(exc: BaseException) -> bool:
+    """True when ``exc`` came from Ctrl-C.
+
+    A ``KeyboardInterrupt`` raised while compiled code runs (a numba kernel) can surface as a
+    ``SystemError`` whose cause is the interrupt; that is an interrupt, not a bad mesh.
+    """
+    seen = set()
+    while exc is not None and id(exc) not in seen:
+        if isinstance(exc, KeyboardInterrupt):
+            return True
+        seen.add(id(exc))
+        exc = exc.__cause__ or exc.__context__
+    return False
 
 
 def plan(mesh_paths: Iterable[str | os.PathLike], out_dir: str | os.PathLike, *,
@@ -118,6 +134,8 @@ def pose_file(recipe, source: str, target: str) -> Outcome:
         save_mesh(doc, target, vertices=posed)
         error = None
     except Exception as exc:  # noqa: BLE001 - one bad mesh must not stop the batch
+        if interrupted(exc):
+            raise KeyboardInterrupt from exc
         error = describe(exc)
     return Outcome(source, target, error, time.perf_counter() - start)
 

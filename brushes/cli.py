@@ -410,7 +410,7 @@ def demo_summary(report: dict) -> list[str]:
     """Short human lines for the demo: volume change, max displacement, flipped faces."""
     change = report.get("volume_change")
     volume = ("n/a (the mesh is not closed)" if change is None
-              else f"{100.0 * change:+.2f} %")
+              else f"{100.0 * change:+.3g} %")
     return [f"volume change:     {volume}",
             f"max displacement:  {report['max_displacement']:.4g}",
             f"flipped faces:     {report['flipped_faces']}"]
@@ -511,14 +511,17 @@ def main(argv: list[str] | None = None) -> int:
         except OSError:
             pass
         return EXIT_PARTIAL
-    except (ValueError, OSError) as exc:
+    except Exception as exc:
+        from brushes.batch import interrupted
+
         if debug:
             traceback.print_exc()
-        _fail(_message(exc))
-        return EXIT_BAD_INPUT
-    except Exception as exc:  # noqa: BLE001 - the CLI edge answers every error in one line
-        if debug:
-            traceback.print_exc()
+        if interrupted(exc):
+            print(f"{PROG}: interrupted", file=sys.stderr)
+            return EXIT_INTERRUPTED
+        if isinstance(exc, (ValueError, OSError)):
+            _fail(_message(exc))
+            return EXIT_BAD_INPUT
         _fail(f"internal error: {_message(exc)} (rerun with --debug for the traceback)")
         return EXIT_PARTIAL
 

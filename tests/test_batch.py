@@ -15,7 +15,8 @@ import numpy as np
 import pytest
 import trimesh
 
-from brushes.batch import BatchError, ClusterUnavailable, Outcome, describe, plan, pose_file, run_batch
+from brushes.batch import (BatchError, ClusterUnavailable, Outcome, describe, interrupted, plan,
+                           pose_file, run_batch)
 
 STROKE = {"brush": "grab", "center": [0.3, 0.5, 0.0], "radius": 0.7, "move": [0.0, 0.2, 0.1]}
 
@@ -75,6 +76,21 @@ def test_describe_gives_one_line():
         "m.obj: No such file or directory"
     assert describe(ValueError("first\n  second\n")) == "first; second"
     assert describe(RuntimeError("odd")) == "RuntimeError: odd"
+
+
+def test_an_interrupt_inside_compiled_code_is_still_an_interrupt():
+    # CPython turns an exception pending when a C function returns normally into
+    # "SystemError: ... returned a result with an exception set", chained to the original
+    # (seen with Ctrl-C during a numba kernel)
+    try:
+        try:
+            raise KeyboardInterrupt
+        except KeyboardInterrupt as exc:
+            raise SystemError("returned a result with an exception set") from exc
+    except SystemError as err:
+        assert interrupted(err)
+    assert not interrupted(ValueError("bad mesh"))
+    assert interrupted(KeyboardInterrupt())
 
 
 # --------------------------------------------------------------------------- one task
