@@ -497,6 +497,12 @@ def main(argv: list[str] | None = None) -> int:
     except SystemExit as exc:          # --help (0) and usage errors (2)
         return exc.code if isinstance(exc.code, int) else EXIT_BAD_INPUT
     debug = args.debug
+    # The numba kernels' threads come from GNU OpenMP, whose threads spin while they wait.
+    # On a machine shared with other work that spinning starves the threads doing the work:
+    # a batch of demo poses ran 4x slower than with sleeping waits. The setting is read when
+    # the OpenMP library loads (on the first kernel call), so it is set here, before any
+    # command runs; a value the user exported wins.
+    os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     try:
         return args.func(args)
     except KeyboardInterrupt:
