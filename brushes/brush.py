@@ -180,8 +180,7 @@ class Grab(_Kelvinlet):
 
     def reach(self, tol):
         m = float(np.linalg.norm(self.move))
-        return kernels.reach_of(lambda d: kernels.grab_magnitude_bound(d, self._eps, self._wn, self._beta, m),
-                                tol, self.radius)
+        return kernels.grab_reach(tol, self._eps, self._wn, self._beta, m)
 
     def velocity(self, points, t, out=None):
         """The grab carried along its own motion: the centre sits at center + t * move."""
@@ -199,18 +198,15 @@ class _Affine(_Kelvinlet):
         self._load = self._load_for(grad)
 
     def _load_for(self, grad):
-        sym = 0.5 * (grad + grad.T)
-        sk = 0.5 * (grad - grad.T)
-        iso = np.trace(grad) / 3.0 * np.eye(3)
-        dev = sym - iso
-        load = np.zeros((3, 3))
-        if np.any(sk):
-            load += sk / kernels.center_value("twist", self._eps, self._w, self._beta)
-        if np.any(dev):
-            load += dev / kernels.center_value("pinch", self._eps, self._w, self._beta)
-        if np.any(iso):
-            load += iso / kernels.center_value("scale", self._eps, self._w, self._beta)
-        return load
+        """The load F whose centre Jacobian is this brush's own part of `grad` (3, 3).
+
+        Each brush is one pure kind, so only its part is kept: a round-off trace of a pinch
+        gradient must not be divided by the scale constant, which is 0 at poisson 0.5.
+        """
+        part = {"twist": 0.5 * (grad - grad.T),
+                "scale": np.trace(grad) / 3.0 * np.eye(3),
+                "pinch": 0.5 * (grad + grad.T) - np.trace(grad) / 3.0 * np.eye(3)}[self.kind]
+        return part / kernels.center_value(self.kind, self._eps, self._w, self._beta)
 
     def displacement(self, points, out=None):
         """u (n, 3) float64 at `points` (n, 3) float32 or float64; written into `out` if given."""
@@ -230,8 +226,7 @@ class _Affine(_Kelvinlet):
         return size * unit
 
     def reach(self, tol):
-        return kernels.reach_of(lambda d: kernels.affine_magnitude_bound(d, self._eps, self._w, self._beta, self._load),
-                                tol, self.radius)
+        return kernels.affine_reach(tol, self._eps, self._w, self._beta, self._load)
 
     # flow: the velocity field whose time-1 flow realizes the brush at its centre
     def flow_gradient(self):  # pragma: no cover - interface

@@ -188,3 +188,51 @@ def reach_of(bound, tol, start):
         else:
             hi = mid
     return hi
+
+
+def _envelope_reach(tol, eps, pointwise, loose):
+    """Distance beyond which |u| < tol, from a pointwise bound and a loose decreasing bound.
+
+    `pointwise(r)` bounds |u| at distance r (not monotone for multi-scale falloffs, where the
+    radii cancel); its upper envelope sup_{r' >= r} is taken over a fine grid (every 1% of radius
+    near the brush, then geometric steps of 0.5%) with a 2% margin, up to where the loose,
+    decreasing bound `loose` (no cancellation) takes over.
+    """
+    if not (tol > 0 and math.isfinite(tol)):
+        raise ValueError(f"tol: must be a positive number, got {tol!r}")
+    far = reach_of(loose, tol, float(eps[0]))
+    if far == 0.0 or len(eps) == 1:
+        return far
+    e0 = float(eps[0])
+    near = np.arange(0.0, 10.0 * e0, 0.01 * e0)
+    geo = 10.0 * e0 * 1.005 ** np.arange(1, 1 + int(math.ceil(math.log(max(far, 10 * e0) / (10 * e0)) / math.log(1.005))) + 1)
+    grid = np.concatenate([near, geo])
+    env = np.maximum.accumulate(pointwise(grid)[::-1])[::-1] * 1.02
+    above = np.flatnonzero(env >= tol)
+    if not len(above):
+        return 0.0
+    i = int(above[-1]) + 1
+    return float(min(far, grid[i] if i < len(grid) else far))
+
+
+def grab_reach(tol, eps, weights, beta, move_norm):
+    """Distance from a grab's centre beyond which |displacement| < tol (see `_envelope_reach`)."""
+    def pointwise(r):
+        ta, tb = gen._profiles_sum(r * r, eps, weights, beta, "grab_u")
+        return (np.abs(ta) + np.abs(tb) * r * r) * move_norm
+
+    return _envelope_reach(tol, eps, pointwise,
+                           lambda d: grab_magnitude_bound(d, eps, weights, beta, move_norm))
+
+
+def affine_reach(tol, eps, weights, beta, load):
+    """Distance from an affine brush's centre beyond which |displacement| < tol."""
+    fn = float(np.linalg.norm(load))
+    tr = abs(float(np.trace(load)))
+
+    def pointwise(r):
+        tp, tq, ts = gen._profiles_sum(r * r, eps, weights, beta, "affine_u")
+        return np.abs(tp) * fn * r + np.abs(tq) * (fn + tr) * r + np.abs(ts) * fn * r**3
+
+    return _envelope_reach(tol, eps, pointwise,
+                           lambda d: affine_magnitude_bound(d, eps, weights, beta, load))
