@@ -373,3 +373,34 @@ def test_settings_changed_mid_drag_apply_to_the_next_stroke(session):
     stroke = session.history.applied[0]
     assert stroke["radius"] == r and stroke["falloff"] == "wide"
     assert session.radius == pytest.approx(r * 1.1**3) and session.falloff == "medium"
+
+
+def test_grab_preview_backends_agree_with_the_plain_formula():
+    from viewer.session import _grab_preview_numba, grab_preview
+    rng = np.random.default_rng(5)
+    n = 50
+    response = rng.normal(size=(n, 3, 3)).astype(np.float32)
+    base_sorted = rng.normal(size=(n, 3))
+    order = rng.permutation(n)
+    weights = rng.uniform(size=n)
+    move = np.array([0.3, -0.2, 0.1])
+    count, touched = 30, 40
+    # The formula written out: moved slots get base + w * K @ move, slots 30..39 the base,
+    # the rest keep what was there.
+    expected = np.full((n, 3), 7.0)
+    moved = base_sorted[:count] + weights[:count, None] * np.einsum(
+        "kab,b->ka", response[:count].astype(np.float64), move)
+    expected[order[:count]] = moved
+    expected[order[count:touched]] = base_sorted[count:touched]
+    backends = ["numpy"] + (["numba"] if _grab_preview_numba() is not None else [])
+    for backend in backends:
+        shown = np.full((n, 3), 7.0)
+        grab_preview(response, move, base_sorted, order, count, touched, shown,
+                     weights=weights, backend=backend)
+        np.testing.assert_allclose(shown, expected, rtol=1e-6, atol=1e-6)
+    with pytest.raises(ValueError, match="^count"):
+        grab_preview(response, move, base_sorted, order, n + 1, 0, np.zeros((n, 3)))
+    with pytest.raises(ValueError, match="^move"):
+        grab_preview(response, [1, 2], base_sorted, order, 1, 0, np.zeros((n, 3)))
+    if len(backends) == 1:
+        pytest.skip("numba is not importable here, so only the numpy backend was checked")

@@ -12,9 +12,9 @@ Strokes: while the button is down the surface shows a cheap preview, the brush's
 displacement (``flow=False``) evaluated only on vertices nearer the centre than
 ``brush.reach(tol)``, the engine's proven bound beyond which every vertex moves less than
 ``tol``; a plain grab reuses ``Grab.response`` computed once per press (displacement =
-response @ move). On release the drag becomes one recipe stroke, and the committed positions
-are exactly :func:`brushes.recipe.apply_stroke` of that stroke on the positions at the press,
-the same call a recipe replay makes.
+response @ move, one fused numba pass when numba imports). On release the drag becomes one
+recipe stroke, and the committed positions are exactly :func:`brushes.recipe.apply_stroke` of
+that stroke on the positions at the press, the same call a recipe replay makes.
 
 Coordinates are pyglet's window units (origin bottom-left). Mouse buttons and modifier bits
 use pyglet's values (:data:`LEFT`, :data:`MOD_SHIFT`, ...), and keys pyglet's symbol names
@@ -24,6 +24,7 @@ its arguments through untouched.
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import time
@@ -34,8 +35,8 @@ import numpy as np
 from viewer import gesture
 from viewer.camera import OrbitCamera
 
-__all__ = ["Session", "BINDINGS", "chord", "mesh_volume", "sphere_mesh", "LEFT", "MIDDLE",
-           "RIGHT", "MOD_SHIFT", "MOD_CTRL", "MOD_ALT"]
+__all__ = ["Session", "BINDINGS", "chord", "mesh_volume", "sphere_mesh", "grab_preview",
+           "LEFT", "MIDDLE", "RIGHT", "MOD_SHIFT", "MOD_CTRL", "MOD_ALT"]
 
 # Same values as pyglet.window.mouse and pyglet.window.key (pyglet is pinned; tests compare).
 LEFT, MIDDLE, RIGHT = 1, 2, 4
@@ -166,6 +167,87 @@ def sphere_mesh(subdivisions=4, radius=1.0):
     import trimesh
     mesh = trimesh.creation.icosphere(subdivisions=int(subdivisions), radius=float(radius))
     return np.asarray(mesh.vertices, dtype=np.float64), np.asarray(mesh.faces, dtype=np.int64)
+
+
+def _grab_preview_numpy(response, move, base_sorted, order, count, touched, shown, weights):
+    k = response[:count]
+    displacement = k[:, :, 0] * move[0] + k[:, :, 1] * move[1] + k[:, :, 2] * move[2]
+    if weights is not None:
+        displacement *= weights[:count, None]
+    shown[order[:count]] = base_sorted[:count] + displacement
+    shown[order[count:touched]] = base_sorted[count:touched]
+
+
+@functools.lru_cache(maxsize=1)
+def _grab_preview_numba():
+    """The compiled preview kernel, or None without numba or with ``PLIANT_BACKEND=numpy``."""
+    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
+        return None
+    try:
+        import numba
+    except ImportError:
+        return None
+
+    @numba.njit(cache=True, nogil=True)
+    def preview(response, move, base_sorted, order, count, touched, shown, weights, weighted):
+        m0, m1, m2 = move[0], move[1], move[2]
+        for i in range(count):
+            w = weights[i] if weighted else 1.0
+            j = order[i]
+            for a in range(3):
+                d = response[i, a, 0] * m0 + response[i, a, 1] * m1 + response[i, a, 2] * m2
+                shown[j, a] = base_sorted[i, a] + w * d
+        for i in range(count, touched):
+            j = order[i]
+            for a in range(3):
+                shown[j, a] = base_sorted[i, a]
+
+    return preview
+
+
+def grab_preview(response, move, base_sorted, order, count, touched, shown, *, weights=None,
+                 backend=None):
+    """Write a grab's one-step preview into ``shown`` in place (the viewer's drag update).
+
+    Vertices are handled in order of distance from the brush centre, so those within the
+    brush's reach are the first ``count`` slots:
+    ``shown[order[i]] = base_sorted[i] + weights[i] * response[i] @ move`` for ``i < count``,
+    and slots ``count <= i < touched`` (moved by the previous update, now out of reach) go
+    back to ``base_sorted[i]``.
+
+    Parameters
+    ----------
+    response : (k, 3, 3) float32 or float64, k >= count
+        ``brushes.Grab.response`` of the distance-sorted press positions.
+    move : (3,) float
+    base_sorted : (n, 3) float64
+        Press positions in distance order.
+    order : (n,) int
+        Slot -> vertex index.
+    count, touched : int
+    shown : (n, 3) float64
+        Written in place (vertex order).
+    weights : (n,) float64 in distance order, optional, keyword-only
+        Mask weights (1 moves freely, 0 holds).
+    backend : {"numba", "numpy", None}, keyword-only
+        None takes numba when it imports (one fused pass), else numpy.
+    """
+    move = np.asarray(move, dtype=np.float64)
+    if move.shape != (3,):
+        raise ValueError(f"move: must have shape (3,), got {move.shape}")
+    count, touched = int(count), int(touched)
+    if not 0 <= count <= len(response):
+        raise ValueError(f"count: must lie in [0, {len(response)}], got {count}")
+    if backend not in (None, "numba", "numpy"):
+        raise ValueError(f"backend: must be 'numba', 'numpy' or None, got {backend!r}")
+    kernel = None if backend == "numpy" else _grab_preview_numba()
+    if backend == "numba" and kernel is None:
+        raise ValueError("backend: numba is not available (missing, or PLIANT_BACKEND=numpy)")
+    if kernel is None:
+        _grab_preview_numpy(response, move, base_sorted, order, count, touched, shown, weights)
+    else:
+        kernel(response, move, base_sorted, order, count, max(touched, count), shown,
+               weights if weights is not None else np.ones(1), weights is not None)
 
 
 class _Drag:
@@ -601,9 +683,13 @@ class Session:
             # `count` rows, so no scattered indexing is needed until the final reordering.
             count = self._within(drag.sorted_distance, brush.reach(self.tolerance))
             if drag.kind == "grab":
-                displacement = self._grab_displacement(drag, count, drag.params["move"])
-            else:
-                displacement = brush.displacement(drag.base_sorted[:count])
+                grab_preview(self._grab_response(drag, count), drag.params["move"],
+                             drag.base_sorted, drag.order, count, drag.touched_count,
+                             self._shown, weights=drag.weights_sorted)
+                drag.touched_count = count
+                self.shown_version += 1
+                return
+            displacement = brush.displacement(drag.base_sorted[:count])
             if drag.weights_sorted is not None:
                 displacement = displacement * drag.weights_sorted[:count, None]
             np.add(drag.base_sorted[:count], displacement, out=drag.shown_sorted[:count])
@@ -636,32 +722,19 @@ class Session:
         """How many of the ascending distances lie below ``reach`` (all of them for inf)."""
         return int(np.searchsorted(sorted_distance, float(reach), side="left"))
 
-    def _grab_displacement(self, drag, count, move):
-        """Grab preview on the first ``count`` distance-sorted vertices: ``K @ move`` with the
-        response K of the press centre, (count, 3) float32.
-
-        K is computed lazily for as many vertices as the reach has asked for so far and kept as
-        three float32 columns ``K[:, :, j]``, so the product is three multiply-adds (no BLAS
-        call, whose threads stall on a busy machine).
-        """
-        done = 0 if drag.response is None else drag.response.shape[1]
+    def _grab_response(self, drag, count):
+        """``brushes.Grab.response`` of the first ``count`` distance-sorted press positions,
+        (>= count, 3, 3) float32, computed lazily for as many vertices as the reach has asked
+        for so far (float32 is plenty for a preview and halves the memory traffic)."""
+        done = 0 if drag.response is None else len(drag.response)
         if count > done:
             import brushes
             probe = brushes.Grab(drag.center, drag.radius, [0.0, 0.0, 0.0],
                                  poisson=drag.poisson, falloff=drag.falloff)
             extra = np.asarray(probe.response(drag.base_sorted[done:count]), dtype=np.float32)
-            extra = np.ascontiguousarray(extra.transpose(2, 0, 1))  # (3, k, 3): K[:, :, j]
             drag.response = extra if drag.response is None else np.concatenate(
-                [drag.response, extra], axis=1)
-            drag.scratch = np.empty((2, len(drag.base), 3), dtype=np.float32)
-        k = drag.response[:, :count]
-        out, tmp = drag.scratch[0, :count], drag.scratch[1, :count]
-        m = np.asarray(move, dtype=np.float32)
-        np.multiply(k[0], m[0], out=out)
-        for j in (1, 2):
-            np.multiply(k[j], m[j], out=tmp)
-            out += tmp
-        return out
+                [drag.response, extra])
+        return drag.response
 
     def _preview_exact(self, drag):
         from brushes.recipe import Stroke
