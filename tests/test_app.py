@@ -258,6 +258,24 @@ def test_no_mesh_opens_the_bundled_model_and_writes_only_to_the_current_folder(t
     assert (tmp_path / "mascot-recipe.json").is_file() and "mascot-recipe.json" in message
 
 
+def test_without_a_display_the_viewer_says_so(ball):
+    if os.environ.get("DISPLAY") or os.environ.get("WAYLAND_DISPLAY"):
+        pytest.skip("a display is available here, so the no-display message cannot be provoked")
+    env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
+    code = textwrap.dedent(f"""
+        from viewer.app import ViewerError, open_viewer
+        try:
+            open_viewer({str(ball)!r}, visible=False)
+        except ViewerError as exc:
+            print("ViewerError:", exc)
+    """)
+    out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, env=env, capture_output=True,
+                         text=True, timeout=120)
+    assert out.returncode == 0, out.stderr[-2000:]
+    assert out.stdout.startswith("ViewerError: the viewer window cannot open")
+    assert "pliant snapshot" in out.stdout
+
+
 def test_bindings_markdown_lists_every_binding():
     from viewer.overlay import bindings_markdown
     from viewer.session import BINDINGS

@@ -22,10 +22,14 @@ import numpy as np
 from viewer import overlay, palette
 from viewer.session import BINDINGS, Session, sphere_mesh
 
-__all__ = ["run", "open_viewer", "load_model", "Viewer", "BINDINGS", "MODEL_NAME"]
+__all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "BINDINGS", "MODEL_NAME"]
 
 MODEL_NAME = "mascot.obj"
 TITLE = "pliant"
+
+
+class ViewerError(RuntimeError):
+    """The viewer window cannot be opened (no display, no OpenGL 3.3)."""
 
 
 def _bundled_model():
@@ -211,8 +215,26 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
     visible : bool, keyword-only
         False for tests and headless use.
     """
-    import pyglet
     model = load_model(mesh_path)
+    try:
+        import pyglet
+        import pyglet.window
+        window = _make_window(pyglet, size, visible)
+    except Exception as exc:  # pyglet raises display, library and context errors of many kinds
+        raise ViewerError(f"the viewer window cannot open ({type(exc).__name__}: {exc}); it "
+                          "needs a desktop session with OpenGL 3.3 (for pictures without a "
+                          "window use pliant snapshot)") from None
+    session = Session(model.pop("vertices"), model.pop("faces"), size=window.get_size(), **model)
+    if recover:
+        try:
+            session.message = session.recover()
+        except ValueError as exc:  # a damaged journal, or one recorded for another mesh
+            session.message = f"recovery failed: {exc}"
+    return Viewer(window, session)
+
+
+def _make_window(pyglet, size, visible):
+    """A resizable pyglet window, multisampled when the driver offers it."""
     # Ask for 8 bits per channel: some drivers (EGL pbuffers among them) otherwise hand out
     # 16-bit colour, which bands the shading.
     base = dict(double_buffer=True, depth_size=24, red_size=8, green_size=8, blue_size=8,
@@ -229,13 +251,7 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
     if window is None:
         window = pyglet.window.Window(width=size[0], height=size[1], caption=TITLE,
                                       resizable=True, visible=visible)
-    session = Session(model.pop("vertices"), model.pop("faces"), size=window.get_size(), **model)
-    if recover:
-        try:
-            session.message = session.recover()
-        except ValueError as exc:  # a damaged journal, or one recorded for another mesh
-            session.message = f"recovery failed: {exc}"
-    return Viewer(window, session)
+    return window
 
 
 def run(mesh_path=None, *, recover=False):

@@ -672,9 +672,9 @@ class Session:
         drag.current = current
         drag.params = self._stroke_params(drag, current)
         if drag.pins is not None:
-            # Pins need the engine's counter-loads: preview with the committed rule (exact,
-            # slower).
-            self._preview_exact(drag)
+            # Pins need the engine's counter-loads: preview with the stroke itself, one step
+            # (flow=False) on every vertex.
+            self._preview_pinned(drag)
             return
         brush = self._brush(drag)
         plane = self.mirror_plane()
@@ -736,9 +736,8 @@ class Session:
                 [drag.response, extra])
         return drag.response
 
-    def _preview_exact(self, drag):
-        from brushes.recipe import Stroke
-        stroke = self._make_stroke(drag)
+    def _preview_pinned(self, drag):
+        stroke = self._make_stroke(drag, flow=False)
         points = stroke.apply(drag.base, groups=self.groups)
         self._shown = points
         self.shown_version += 1
@@ -747,10 +746,10 @@ class Session:
         from brushes import registry
         return registry.lookup(drag.kind)(**self._brush_kwargs(drag))
 
-    def _make_stroke(self, drag):
+    def _make_stroke(self, drag, *, flow=True):
         from brushes.recipe import Stroke
         kwargs = self._brush_kwargs(drag)
-        return Stroke(drag.kind, kwargs, flow=True, pins=drag.pins, mirror=drag.mirror,
+        return Stroke(drag.kind, kwargs, flow=flow, pins=drag.pins, mirror=drag.mirror,
                       mask=drag.mask)
 
     def _commit(self, drag):
