@@ -167,6 +167,9 @@ def build_parser() -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=summary, description=description, epilog=epilog,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
         p.set_defaults(func=globals()[f"cmd_{name}"])
+        # accepted after the command too; SUPPRESS keeps the top-level value when absent
+        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                       help="show the full traceback when something fails")
         return p
 
     p = command("apply")
@@ -437,10 +440,20 @@ def cmd_view(args) -> int:
     if args.mesh is not None:
         _existing(args.mesh, "MESH")
     try:
-        from viewer.app import run
+        import viewer.app as app
     except ImportError as exc:
         raise CliError(f"the viewer cannot start: {exc}") from exc
-    result = run(args.mesh, recover=args.recover)
+    window_error = getattr(app, "ViewerError", ())
+    try:
+        result = app.run(args.mesh, recover=args.recover)
+    except Exception as exc:
+        # no display or no OpenGL is the machine's answer, not a bug: one line, exit 2
+        if isinstance(exc, window_error):
+            raise CliError(str(exc)) from exc
+        if type(exc).__module__.split(".")[0] == "pyglet":
+            raise CliError(f"cannot open the viewer window ({type(exc).__name__}: {exc}); "
+                           "'pliant snapshot' renders without a display") from exc
+        raise
     return EXIT_OK if result is None else int(result)
 
 

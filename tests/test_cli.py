@@ -187,6 +187,36 @@ def test_apply_writes_the_format_of_the_output_extension(files, tmp_path):
     np.testing.assert_allclose(mesh.vertices, files["posed"], rtol=0, atol=1e-5)
 
 
+def test_apply_masks_by_the_obj_groups(files, tmp_path):
+    # faces with a centroid above y = 0 form group "top"; the rest "bottom" (written by hand)
+    v, f = files["rest"], files["faces"]
+    top = v[f].mean(axis=1)[:, 1] > 0
+    lines = [f"v {x!r} {y!r} {z!r}" for x, y, z in v.tolist()]
+    for name, sel in (("top", top), ("bottom", ~top)):
+        lines.append(f"g {name}")
+        lines += [f"f {a + 1} {b + 1} {c + 1}" for a, b, c in f[sel]]
+    mesh = tmp_path / "grouped.obj"
+    mesh.write_text("\n".join(lines) + "\n")
+    stroke = {"brush": "grab", "center": [0.0, 0.0, 0.0], "radius": 1.0,
+              "move": [0.3, 0.0, 0.0], "mask": {"group": "top"}}
+    recipe = tmp_path / "masked.json"
+    recipe.write_text(json.dumps({"format": "pliant-recipe", "version": 1, "strokes": [stroke]}))
+    out = tmp_path / "posed.obj"
+    proc = pliant("apply", recipe, mesh, "-o", out)
+    assert proc.returncode == 0, proc.stderr
+    import brushes
+
+    weights = np.zeros(len(v))
+    weights[np.unique(f[top])] = 1.0              # a group's vertices: those of its faces
+    want = brushes.Grab(stroke["center"], stroke["radius"], stroke["move"]).apply(v, mask=weights)
+    np.testing.assert_allclose(read_obj(out)[0], want, rtol=0, atol=1e-9)
+    only_bottom = np.setdiff1d(np.arange(len(v)), np.unique(f[top]))
+    np.testing.assert_array_equal(read_obj(out)[0][only_bottom], v[only_bottom])
+    stroke["mask"] = {"group": "tail"}
+    recipe.write_text(json.dumps({"format": "pliant-recipe", "version": 1, "strokes": [stroke]}))
+    assert_error(pliant("apply", recipe, mesh, "-o", out), mentions=["tail"])
+
+
 def test_missing_file_exits_2(files, tmp_path):
     proc = pliant("apply", files["recipe"], tmp_path / "absent.obj", "-o", tmp_path / "x.obj")
     assert_error(proc, mentions=["absent.obj"])
@@ -245,6 +275,8 @@ def test_debug_shows_the_traceback(files, tmp_path):
     assert proc.returncode == 2
     assert "Traceback" in proc.stderr
     assert proc.stderr.strip().splitlines()[-1].startswith("pliant: error: ")
+    late = pliant("apply", files["recipe"], bad, "-o", tmp_path / "x.obj", "--debug")
+    assert late.returncode == 2 and "Traceback" in late.stderr
 
 
 def test_an_unexpected_error_is_one_line_and_exit_1(monkeypatch, capsys):
@@ -504,6 +536,15 @@ def test_ctrl_c_exits_130_and_leaves_only_whole_files(files, tmp_path, jobs):
 
 def test_view_missing_file_exits_2(tmp_path):
     assert_error(pliant("view", tmp_path / "absent.obj"), mentions=["absent.obj"])
+
+
+def test_view_without_a_display_is_one_line_exit_2(files):
+    e = env()
+    for name in ("DISPLAY", "WAYLAND_DISPLAY"):
+        e.pop(name, None)
+    proc = subprocess.run([sys.executable, "-m", "brushes.cli", "view", str(files["mesh"])],
+                          capture_output=True, text=True, env=e, timeout=120)
+    assert_error(proc, mentions=["viewer window"])
 
 
 def test_view_passes_its_arguments_to_the_viewer(monkeypatch, tmp_path, files):
