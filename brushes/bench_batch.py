@@ -4,8 +4,8 @@ For each ``--jobs`` value the command runs as a user would run it (a subprocess 
 Python), over ``copies`` copies of the bundled mascot posed with its bundled recipe. While it
 runs, psutil samples the CPU time of the command and its worker processes, to show whether
 the extra workers really kept more cores busy (and the whole machine's load, since other work
-on a shared machine changes the timings). Reported per run: wall time, assets per second, mean and peak busy cores
-(sum of per-core load / 100); and the speed-up of each ``--jobs`` value over the first.
+on a shared machine changes the timings). Reported per run: wall time, assets per second,
+mean and peak busy cores; and the speed-up of each ``--jobs`` value over the first.
 
 Start-up (interpreter, imports, process pool) is part of the time, as it is for a user.
 """

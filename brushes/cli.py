@@ -108,7 +108,7 @@ examples:
              """\
 examples:
   pliant demo
-  pliant demo --out /tmp/mascot
+  pliant demo --out renders/mascot
 """),
     "view": ("open the interactive viewer",
              "Open the viewer window, optionally with a mesh loaded. --recover replays\n"
