@@ -113,6 +113,7 @@ def bench_batch(copies: int = 200, jobs=(1, 2), *, interval: float = 0.25) -> di
                 "jobs": n, "seconds": seconds, "assets_per_second": copies / seconds,
                 "busy_cores_mean": sum(own) / len(own), "busy_cores_peak": max(own),
                 "machine_busy_cores_mean": sum(machine) / len(machine),
+                "cpu_seconds_per_asset": sum(own) / len(own) * seconds / copies,
                 "exit_code": proc.returncode, "summary": stdout.strip().splitlines()[-1]})
     base = result["runs"][0]["seconds"]
     result["speedup"] = {run["jobs"]: base / run["seconds"] for run in result["runs"]}
@@ -133,6 +134,7 @@ def main(argv=None) -> int:
               f"{run['assets_per_second']:.1f} assets/s, busy cores mean "
               f"{run['busy_cores_mean']:.2f} peak {run['busy_cores_peak']:.2f} "
               f"(whole machine {run['machine_busy_cores_mean']:.2f}), "
+              f"{run['cpu_seconds_per_asset']:.2f} CPU s/asset, "
               f"speed-up x{r['speedup'][run['jobs']]:.2f}")
     return 0
 
