@@ -53,8 +53,9 @@ examples:
 
 exit codes:
   0    success
-  1    partial failure (some meshes of a batch failed)
-  2    bad input or usage (missing file, bad mesh or recipe, refused overwrite)
+  1    partial failure: some meshes of a batch failed (also: an internal error)
+  2    bad input or usage: missing file, bad mesh or recipe, refused overwrite,
+       unreachable cluster, no display or OpenGL
   130  interrupted (Ctrl-C)
 
 Run 'pliant COMMAND --help' for the options of a command; add --debug before the
@@ -64,8 +65,10 @@ command to see tracebacks.
 HELP = {
     "apply": ("pose one mesh with a recipe",
               "Replay a recipe stroke by stroke on one mesh and write the posed mesh.\n"
-              "The output format follows OUT's extension (.obj .ply .stl .off .glb .gltf);\n"
-              "OBJ to OBJ keeps the file's structure (groups, normals, texture coordinates).",
+              "The output format follows OUT's extension (.obj .ply .stl .off .glb .gltf).\n"
+              "In the input's own format only positions (and stored normals) change: an OBJ\n"
+              "keeps its groups, texture coordinates, materials and comments. Another format\n"
+              "carries positions, faces and per-vertex texture coordinates.",
               """\
 examples:
   pliant apply pose.json figure.obj -o figure-posed.obj
