@@ -263,7 +263,7 @@ def test_pin_on_the_grab_path_is_refused_in_flow_only():
 @pytest.mark.parametrize("flow", [False, True])
 def test_pin_at_mirrored_grab_centre_is_refused(flow):
     b = make_brush("mirror-grab")
-    (a, _), (mirrored_centre, _) = grab_paths(b)
+    _, (mirrored_centre, _) = grab_paths(b)
     with pytest.raises(ValueError, match=r"^pins:.*centre"):
         b.apply(np.zeros((2, 3)), flow=flow, pins=mirrored_centre[None])
 
