@@ -8,6 +8,7 @@ forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`.
 """
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -290,6 +291,13 @@ class Scale(_Affine):
 
     def flow_gradient(self):
         return math.log(self.factor) * np.eye(3)
+
+    @functools.cached_property
+    def radial_flow_table(self):
+        """The radial flow map's table (see `brushes.flow.radial_flow_table`), built once."""
+        from brushes import flow as _flow
+
+        return _flow.radial_flow_table(self)
 
 
 class Pinch(_Affine):

@@ -22,8 +22,13 @@ MAX_CONDITION = 1e10
 
 
 def check_pins(pins):
-    """Convert and check `pins`: (m, 3) float64 finite."""
-    arr = np.asarray(pins, dtype=np.float64)
+    """Convert and check `pins`: (m, 3) float64 finite; an empty list gives (0, 3)."""
+    try:
+        arr = np.asarray(pins, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise ValueError("pins: must be an (m, 3) array of numbers") from None
+    if arr.size == 0:
+        return np.zeros((0, 3))
     if arr.ndim == 1 and arr.shape == (3,):
         arr = arr[None, :]
     if arr.ndim != 2 or arr.shape[1] != 3:
