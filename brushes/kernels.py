@@ -27,16 +27,24 @@ def backend_name():
     return "numba" if _numba_funcs() is not None else "numpy"
 
 
+def numba_module():
+    """The numba module, or None when it is missing or ``PLIANT_BACKEND=numpy`` is set.
+
+    The one switch for every numba kernel in pliant (engine, picking, viewer).
+    """
+    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
+        return None
+    try:
+        import numba
+    except ImportError:
+        return None
+    return numba
+
+
 def _numba_funcs():
     global _NUMBA
     if _NUMBA is None:
-        if os.environ.get("PLIANT_BACKEND", "").lower() == "numpy":
-            _NUMBA = False
-        else:
-            try:
-                _NUMBA = gen._numba_kernels()
-            except ImportError:
-                _NUMBA = False
+        _NUMBA = gen._numba_kernels() if numba_module() is not None else False
     return _NUMBA or None
 
 

@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import functools
 import math
-import os
 from typing import NamedTuple
 
 import numpy as np
@@ -75,11 +74,10 @@ def _miss():
 @functools.lru_cache(maxsize=1)
 def _numba_kernels():
     """The compiled kernels, or None when numba is missing or ``PLIANT_BACKEND=numpy``."""
-    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
-        return None
-    try:
-        import numba
-    except ImportError:
+    from brushes.kernels import numba_module
+
+    numba = numba_module()
+    if numba is None:
         return None
     return _make_numba_kernels(numba)
 

@@ -18,7 +18,6 @@ Shaders are module-level strings; the palette is pasted in from :mod:`viewer.pal
 
 import ctypes
 import functools
-import os
 
 import numpy as np
 import scipy.sparse
@@ -108,11 +107,10 @@ def _face_cross_numpy(vertices, faces, out):
 def _face_cross_numba():
     """The compiled face cross-product kernel, or None without numba or with
     ``PLIANT_BACKEND=numpy`` (the switch the engine and picking use too)."""
-    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
-        return None
-    try:
-        import numba
-    except ImportError:
+    from brushes.kernels import numba_module
+
+    numba = numba_module()
+    if numba is None:
         return None
 
     @numba.njit(cache=True, nogil=True)

@@ -181,11 +181,10 @@ def _grab_preview_numpy(response, move, base_sorted, order, count, touched, show
 @functools.lru_cache(maxsize=1)
 def _grab_preview_numba():
     """The compiled preview kernel, or None without numba or with ``PLIANT_BACKEND=numpy``."""
-    if os.environ.get("PLIANT_BACKEND", "").strip().lower() == "numpy":
-        return None
-    try:
-        import numba
-    except ImportError:
+    from brushes.kernels import numba_module
+
+    numba = numba_module()
+    if numba is None:
         return None
 
     @numba.njit(cache=True, nogil=True)
