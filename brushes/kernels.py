@@ -84,6 +84,37 @@ def gradient_bound(kind, falloff, poisson):
     return max(vals[i - 1], vals[i])
 
 
+_AFFINE_MAP = None
+
+
+def affine_map(points, A, b, out=None):
+    """out = points @ A.T + b for points (n, 3), A (3, 3), b (3,): (n, 3) float64.
+
+    A parallel loop under numba (numpy's broadcasting over a trailing axis of 3 is slow on
+    million-point arrays); numpy otherwise. `out` may be `points` itself.
+    """
+    global _AFFINE_MAP
+    pts = _as_points(points)
+    res = _out(out, pts.shape)
+    A = np.ascontiguousarray(A, dtype=np.float64)
+    b = np.ascontiguousarray(b, dtype=np.float64)
+    numba = numba_module()
+    if numba is None:
+        res[...] = pts @ A.T + b
+        return res
+    if _AFFINE_MAP is None:
+        @numba.njit(parallel=True, cache=True, nogil=True)
+        def _map(p, A, b, out):
+            for i in numba.prange(p.shape[0]):
+                x, y, z = p[i, 0], p[i, 1], p[i, 2]
+                for a in range(3):
+                    out[i, a] = A[a, 0] * x + A[a, 1] * y + A[a, 2] * z + b[a]
+            return out
+
+        _AFFINE_MAP = _map
+    return _AFFINE_MAP(pts, A, b, res)
+
+
 def _as_points(points):
     pts = np.asarray(points)
     if pts.ndim != 2 or pts.shape[1] != 3:

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from brushes import kernels
 from brushes.brush import Brush, _finite_vector
 
 
@@ -28,14 +29,18 @@ class Mirrored(Brush):
         self._normal_given = n
         self.point = _finite_vector("point", point)
         self.H = np.eye(3) - 2.0 * np.outer(self.normal, self.normal)
+        self._shift = 2.0 * float(self.point @ self.normal) * self.normal
         for name in ("center", "radius", "poisson"):
             if hasattr(brush, name):
                 setattr(self, name, getattr(brush, name))
 
     def reflect(self, points):
-        """R(x) for points (n, 3): their mirror images."""
-        pts = np.asarray(points, dtype=np.float64)
-        return self.point + (pts - self.point) @ self.H
+        """R(x) = H x + 2 (point . n) n for points (n, 3): their mirror images."""
+        return kernels.affine_map(points, self.H, self._shift)
+
+    def _flip(self, vectors):
+        """H v for vectors (n, 3) float64, in place."""
+        return kernels.affine_map(vectors, self.H, np.zeros(3), out=vectors)
 
     def params(self):
         return {"brush": {"kind": self.brush.kind, **self.brush.params()},
@@ -43,7 +48,7 @@ class Mirrored(Brush):
 
     def displacement(self, points, out=None):
         u = self.brush.displacement(points, out=out)
-        u += self.brush.displacement(self.reflect(points)) @ self.H
+        u += self._flip(self.brush.displacement(self.reflect(points)))
         return u
 
     def jacobian(self, points):
@@ -53,7 +58,7 @@ class Mirrored(Brush):
 
     def velocity(self, points, t, out=None):
         v = self.brush.velocity(points, t, out=out)
-        v += self.brush.velocity(self.reflect(points), t) @ self.H
+        v += self._flip(self.brush.velocity(self.reflect(points), t))
         return v
 
     def lipschitz(self):
