@@ -136,7 +136,7 @@ def bench_io(n):
     res = bench_obj(n)
     print(f"\n## io: OBJ load + structure-keeping save, {n:,} vertices")
     for k, v in res.items():
-        print(f"{k}: {v:.3f}" if isinstance(v, float) else f"{k}: {v}")
+        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
 
 
 def bench_batch_section(copies):
@@ -145,7 +145,7 @@ def bench_batch_section(copies):
     res = bench_batch(copies=copies)
     print(f"\n## batch: {copies} copies of the demo model")
     for k, v in res.items():
-        print(f"{k}: {v:.3f}" if isinstance(v, float) else f"{k}: {v}")
+        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
 
 
 def bench_picking_section(n):
@@ -154,7 +154,7 @@ def bench_picking_section(n):
     res = bench_picking(n)
     print(f"\n## picking: {n:,} triangles")
     for k, v in res.items():
-        print(f"{k}: {v:.4f}" if isinstance(v, float) else f"{k}: {v}")
+        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
 
 
 def bench_drag_section(n):
@@ -163,7 +163,7 @@ def bench_drag_section(n):
     res = bench_drag(n)
     print(f"\n## viewer drag update: {n:,} vertices")
     for k, v in res.items():
-        print(f"{k}: {v:.4f}" if isinstance(v, float) else f"{k}: {v}")
+        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
 
 
 SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag")
