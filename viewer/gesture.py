@@ -34,6 +34,8 @@ import math
 
 import numpy as np
 
+from viewer.camera import _positive  # one checker for positive numbers in the viewer
+
 __all__ = [
     "grab", "twist", "scale", "pinch", "drag_params", "plane_point",
     "wheel_radius", "radius_from_pixels", "pixels_from_radius", "KINDS",
@@ -54,13 +56,6 @@ def _pixel(value, name):
     if p.shape != (2,) or not np.all(np.isfinite(p)):
         raise ValueError(f"{name}: must be a finite (x, y) window point, got shape {p.shape}")
     return p
-
-
-def _positive(value, name):
-    v = float(value)
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{name}: must be a finite number > 0, got {value!r}")
-    return v
 
 
 def _finite(value, name):
