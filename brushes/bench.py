@@ -130,40 +130,30 @@ def bench_startup():
     print(f"best {min(times):.2f} s, worst {max(times):.2f} s")
 
 
-def bench_io(n):
-    from brushes.bench_io import bench_obj
+def _section(title, module, func, *args, **kwargs):
+    """Run a benchmark function from another module and print its figures under a heading."""
+    import importlib
 
-    res = bench_obj(n)
-    print(f"\n## io: OBJ load + structure-keeping save, {n:,} vertices")
+    res = getattr(importlib.import_module(module), func)(*args, **kwargs)
+    print(f"\n## {title}")
     for k, v in res.items():
         print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
+
+
+def bench_io(n):
+    _section(f"io: OBJ load + structure-keeping save, {n:,} vertices", "brushes.bench_io", "bench_obj", n)
 
 
 def bench_batch_section(copies):
-    from brushes.bench_batch import bench_batch
-
-    res = bench_batch(copies=copies)
-    print(f"\n## batch: {copies} copies of the demo model")
-    for k, v in res.items():
-        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
+    _section(f"batch: {copies} copies of the demo model", "brushes.bench_batch", "bench_batch", copies=copies)
 
 
 def bench_picking_section(n):
-    from viewer.bench import bench_picking
-
-    res = bench_picking(n)
-    print(f"\n## picking: {n:,} triangles")
-    for k, v in res.items():
-        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
+    _section(f"picking: {n:,} triangles", "viewer.bench", "bench_picking", n)
 
 
 def bench_drag_section(n):
-    from viewer.bench_drag import bench_drag
-
-    res = bench_drag(n)
-    print(f"\n## viewer drag update: {n:,} vertices")
-    for k, v in res.items():
-        print(f"{k}: {v:.4g}" if isinstance(v, float) else f"{k}: {v}")
+    _section(f"viewer drag update: {n:,} vertices", "viewer.bench_drag", "bench_drag", n)
 
 
 SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag")
