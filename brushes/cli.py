@@ -513,12 +513,11 @@ def main(argv: list[str] | None = None) -> int:
     except SystemExit as exc:          # --help (0) and usage errors (2)
         return exc.code if isinstance(exc.code, int) else EXIT_BAD_INPUT
     debug = args.debug
-    # The numba kernels' threads come from GNU OpenMP, whose threads spin while they wait.
-    # On a machine shared with other work that spinning starves the threads doing the work:
-    # a batch of demo poses ran 4x slower than with sleeping waits. The setting is read when
-    # the OpenMP library loads (on the first kernel call), so it is set here, before any
-    # command runs; a value the user exported wins.
-    os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+    # GNU OpenMP's spinning waits starve the other core on a shared machine (a batch of demo
+    # poses ran 4x slower); the setting is read when OpenMP loads, so it is made before any command.
+    from brushes.kernels import prefer_sleeping_threads
+
+    prefer_sleeping_threads()
     try:
         return args.func(args)
     except KeyboardInterrupt:

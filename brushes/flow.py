@@ -8,7 +8,7 @@ Step control. For one classical Runge-Kutta (RK4) step of size h on a field with
 constant L, the increment d(x) has Lipschitz constant at most
 hL + (hL)^2/2 + (hL)^3/6 + (hL)^4/24 < exp(hL) - 1,
 so with hL <= ln(1.9) each step's map x -> x + d(x) has gradient norm below 0.9 and is one-to-one:
-no step can fold space. L comes from the closed-form gradient bounds derived in `brushes.derive`.
+no step can fold space. L comes from the closed-form gradient bounds derived in `brushes.kernels.derive`.
 More steps are taken where accuracy needs them (`ACCURACY_STEPS_PER_L`).
 
 Closed forms where the flow has one:

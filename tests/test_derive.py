@@ -1,4 +1,4 @@
-"""Tests of `brushes.derive`: the sympy derivation, its proofs and the generator of `_kernels.py`.
+"""Tests of `brushes.kernels.derive`: the sympy derivation, its proofs and the generator of `_generated.py`.
 
 The formulas are checked against their published form (de Goes & James, "Regularized Kelvinlets",
 ACM Trans. Graph. 36(4), 2017, cited below as [dGJ17]) written out again here by hand, not taken
@@ -12,9 +12,9 @@ import pytest
 import sympy as sp
 from scipy import integrate
 
-from brushes import derive
+from brushes.kernels import derive
 
-KERNELS_FILE = pathlib.Path(derive.__file__).with_name("_kernels.py")
+KERNELS_FILE = pathlib.Path(derive.__file__).with_name("_generated.py")
 
 
 def paper_density(r, eps):

@@ -1,6 +1,6 @@
-"""Tests of the generated kernels (`brushes._kernels`) and their entry points (`brushes.kernels`).
+"""Tests of the generated kernels (`brushes.kernels._generated`) and their entry points (`brushes.kernels`).
 
-The physics is checked numerically, independently of the sympy proofs in `brushes.derive`:
+The physics is checked numerically, independently of the sympy proofs in `brushes.kernels.derive`:
 finite differences of the numeric displacement must satisfy the Navier-Cauchy equations under the
 published regularized load, and far away the grab must be Kelvin's point-load solution.
 [dGJ17] is F. de Goes and D. L. James, "Regularized Kelvinlets: Sculpting Brushes based on
@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 import brushes
-from brushes import _kernels as gen
+from brushes.kernels import _generated as gen
 from brushes import kernels
 
 RATIOS = {"wide": (1.0,), "medium": (1.0, 1.5), "tight": (1.0, 1.5, 2.25)}

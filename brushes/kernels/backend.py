@@ -1,8 +1,8 @@
-"""Backend choice and typed entry points over the generated kernels in `_kernels.py`.
+"""Backend choice and typed entry points over the generated kernels in `_generated.py`.
 
 The numba backend (parallel loops, cached compilation) is used when numba imports; the numpy
 backend when it does not, or when the environment variable ``PLIANT_BACKEND=numpy`` is set.
-Both are generated from the same sympy expressions (see `brushes.derive`).
+Both are generated from the same sympy expressions (see `brushes.kernels.derive`).
 """
 from __future__ import annotations
 
@@ -12,14 +12,20 @@ import os
 
 import numpy as np
 
-from brushes import _kernels as gen
-
-# OpenMP threads that spin while waiting starve the other core on a busy 2-core machine (a
-# 1,000-point call took 4 ms instead of 10 us under load); sleep instead, unless the user chose.
-os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+from brushes.kernels import _generated as gen
 
 FALLOFFS = tuple(gen.FALLOFFS)
 _NUMBA = None
+
+
+def prefer_sleeping_threads():
+    """Ask OpenMP to sleep, not spin, while it waits, unless the user chose (OMP_WAIT_POLICY).
+
+    Spinning waits starve the other core on a busy 2-core machine (a 1,000-point call took 4 ms
+    instead of 10 us under load). The command, batch workers and the viewer call this before their
+    first parallel kernel; a library user's environment is left alone.
+    """
+    os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 
 
 def backend_name():
@@ -71,7 +77,7 @@ def center_value(kind, eps, weights, beta):
 def gradient_bound(kind, falloff, poisson):
     """Bound on sup ||J||_2 of the unit kernel (radius 1, unit strength) at Poisson's ratio `poisson`.
 
-    The table in `_kernels.GRADIENT_BOUNDS` is sampled at `BOUND_NUS`; between two samples the
+    The table in `_generated.GRADIENT_BOUNDS` is sampled at `BOUND_NUS`; between two samples the
     larger of the two is used (the bound varies slowly and monotonically; the table has a 1% margin).
     """
     vals = gen.GRADIENT_BOUNDS[kind][falloff]
