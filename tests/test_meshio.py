@@ -621,7 +621,7 @@ def test_obj_comments_weights_and_indented_lines(tmp_path):
 
 
 def test_bench_synthetic_obj_and_ratio(tmp_path):
-    from brushes.bench_io import bench_obj, synthetic_obj
+    from benchmarks.files import bench_obj, synthetic_obj
 
     p = tmp_path / "g.obj"
     nv, nf = synthetic_obj(p, 400)

@@ -242,7 +242,7 @@ def test_bad_input():
 
 
 def test_bench_runs_on_a_small_closed_torus():
-    from viewer.bench import bench_picking, wavy_torus
+    from benchmarks.picking import bench_picking, wavy_torus
 
     v, f = wavy_torus(2000)
     assert len(f) >= 2000

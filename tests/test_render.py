@@ -171,7 +171,7 @@ def test_face_cross_products_numba_agrees_with_numpy():
 
 def test_bench_drag_runs_headless():
     # A tiny run of the drag benchmark in a fresh process (pyglet headless must come first).
-    code = ("from viewer.bench_drag import bench_drag;"
+    code = ("from benchmarks.drag import bench_drag;"
             "r = bench_drag(3000, repeats=3);"
             "print(r['n_vertices'], r['reach_fraction'], r['total_ms'] > 0)")
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True,

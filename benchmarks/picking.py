@@ -1,4 +1,4 @@
-"""Picking benchmark: ``python -m viewer.bench [n_triangles]``.
+"""Picking benchmark: ``python -m benchmarks.picking [n_triangles]``.
 
 Builds a :class:`viewer.picking.Picker` on a generated wavy torus, refits it after a
 deformation and times picks along rays aimed at the surface.  Run it alone: timings on a
@@ -93,7 +93,7 @@ def bench_picking(n_triangles=1_000_000, *, n_picks=200, seed=0, backend=None):
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(prog="python -m viewer.bench", description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="python -m benchmarks.picking", description=__doc__.splitlines()[0])
     parser.add_argument("n_triangles", nargs="?", type=int, default=1_000_000)
     parser.add_argument("--picks", type=int, default=200)
     parser.add_argument("--backend", choices=["numba", "numpy"], default=None)

@@ -1,7 +1,7 @@
-"""Drag-update benchmark: ``python -m viewer.bench_drag [n_vertices]``.
+"""Drag-update benchmark: ``python -m benchmarks.drag [n_vertices]``.
 
 One frame of a grab drag in the viewer does three things, timed here separately on a
-generated wavy torus (:func:`viewer.bench.wavy_torus`) in a headless OpenGL context:
+generated wavy torus (:func:`benchmarks.picking.wavy_torus`) in a headless OpenGL context:
 
 1. brush: :meth:`viewer.session.Session.drag`, i.e. the gesture, the brush and its
    ``reach(tol)``, and the preview displacement ``response @ move`` with the grab response
@@ -47,7 +47,7 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
         (the process's CPU time for the same work: on a busy machine, where other processes
         stretch the wall-clock times, it is the better measure of the work itself).
     """
-    from viewer.bench import wavy_torus
+    from benchmarks.picking import wavy_torus
     from viewer.session import LEFT, Session
     from viewer.snapshot import ensure_gl_context
 
@@ -109,7 +109,7 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
 
 
 def main(argv=None):
-    parser = argparse.ArgumentParser(prog="python -m viewer.bench_drag",
+    parser = argparse.ArgumentParser(prog="python -m benchmarks.drag",
                                      description="time one grab-drag update of the viewer")
     parser.add_argument("n_vertices", nargs="?", type=int, default=200_000)
     parser.add_argument("--repeats", type=int, default=30)

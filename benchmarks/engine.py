@@ -1,4 +1,4 @@
-"""Benchmarks: `python -m brushes.bench [--points N] [--only SECTION,...]`.
+"""Benchmarks: `python -m benchmarks.engine [--points N] [--only SECTION,...]`.
 
 Ratios are measured in one process against baselines on the same data:
 - the memory-bound floor `np.add(points, 1.0, out=buf)`;
@@ -141,26 +141,26 @@ def _section(title, module, func, *args, **kwargs):
 
 
 def bench_io(n):
-    _section(f"io: OBJ load + structure-keeping save, {n:,} vertices", "brushes.bench_io", "bench_obj", n)
+    _section(f"io: OBJ load + structure-keeping save, {n:,} vertices", "benchmarks.files", "bench_obj", n)
 
 
 def bench_batch_section(copies):
-    _section(f"batch: {copies} copies of the demo model", "brushes.bench_batch", "bench_batch", copies=copies)
+    _section(f"batch: {copies} copies of the demo model", "benchmarks.batch", "bench_batch", copies=copies)
 
 
 def bench_picking_section(n):
-    _section(f"picking: {n:,} triangles", "viewer.bench", "bench_picking", n)
+    _section(f"picking: {n:,} triangles", "benchmarks.picking", "bench_picking", n)
 
 
 def bench_drag_section(n):
-    _section(f"viewer drag update: {n:,} vertices", "viewer.bench_drag", "bench_drag", n)
+    _section(f"viewer drag update: {n:,} vertices", "benchmarks.drag", "bench_drag", n)
 
 
 SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag")
 
 
 def main(argv=None):
-    p = argparse.ArgumentParser(prog="python -m brushes.bench", description=__doc__.splitlines()[0])
+    p = argparse.ArgumentParser(prog="python -m benchmarks.engine", description=__doc__.splitlines()[0])
     p.add_argument("--points", type=int, default=1_000_000, help="points for kernels and flow (default 1,000,000)")
     p.add_argument("--only", default="kernels,flow,startup",
                    help=f"comma-separated sections of: {', '.join(SECTIONS)} (default kernels,flow,startup)")

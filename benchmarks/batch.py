@@ -1,4 +1,4 @@
-"""Time ``pliant batch`` over copies of the demo model: ``python -m brushes.bench_batch``.
+"""Time ``pliant batch`` over copies of the demo model: ``python -m benchmarks.batch``.
 
 For each ``--jobs`` value the command runs as a user would run it (a subprocess of this
 Python), over ``copies`` copies of the bundled mascot posed with its bundled recipe. While it
@@ -121,7 +121,7 @@ def bench_batch(copies: int = 200, jobs=(1, 2), *, interval: float = 0.25) -> di
 
 
 def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(prog="python -m brushes.bench_batch",
+    parser = argparse.ArgumentParser(prog="python -m benchmarks.batch",
                                      description=__doc__.splitlines()[0])
     parser.add_argument("--copies", type=int, default=200)
     parser.add_argument("--jobs", type=int, nargs="+", default=[1, 2])

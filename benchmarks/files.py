@@ -1,6 +1,6 @@
 """Benchmark of OBJ input/output: pliant's structure-keeping reader/writer against trimesh.
 
-``python -m brushes.bench_io [n_vertices]`` prints the timings; the target is a ratio of at most
+``python -m benchmarks.files [n_vertices]`` prints the timings; the target is a ratio of at most
 1.5 (our load + save over trimesh's ``load(process=False)`` + ``export``) at one million vertices.
 """
 
@@ -56,7 +56,7 @@ def bench_obj(n_vertices: int = 1_000_000) -> dict:
     """
     import trimesh
 
-    from .meshio import load_mesh, save_mesh
+    from brushes.meshio import load_mesh, save_mesh
 
     n_vertices = int(n_vertices)
     if n_vertices < 4:
