@@ -93,8 +93,9 @@ def vertex_normals(vertices, faces, *, normalize=True, operator=None):
     """Area-weighted vertex normals.
 
     ``N_i = normalise( sum over faces f at vertex i of (b_f - a_f) x (c_f - a_f) )``: each face
-    counts in proportion to its area (the weighting trimesh's ``vertex_normals`` and most tools
-    use, common practice). A vertex with no faces, or whose faces cancel or have no area, gets the
+    counts in proportion to its area (area weighting, common practice; trimesh's default
+    ``vertex_normals`` weights by corner angle instead, and its ``geometry.mean_vertex_normals`` of
+    area-scaled face normals gives this one). A vertex with no faces, or whose faces cancel or have no area, gets the
     zero vector; callers test ``np.any(N, axis=1)`` to find them.
 
     vertices : (n, 3) float32 or float64 (the result keeps the dtype)
