@@ -115,8 +115,9 @@ def bench_flow(n):
     print(f"\n## flow: apply(flow=True) on {n:,} points")
     print(f"{'brush':24s} {'steps':>5s} {'evals':>5s} {'ms':>9s} {'/ add':>7s}")
     for name, b in cases:
-        t = _best(lambda: b.apply(pts), repeat=2)
-        print(f"{name:24s} {FlowStats.steps:5d} {FlowStats.evaluations:5d} {t * 1e3:9.1f} {t / floor:7.1f}")
+        stats = FlowStats()
+        t = _best(lambda: b.apply(pts, stats=stats), repeat=2)
+        print(f"{name:24s} {stats.steps:5d} {stats.evaluations:5d} {t * 1e3:9.1f} {t / floor:7.1f}")
 
 
 def bench_startup():

@@ -10,12 +10,13 @@ Solutions of Elasticity", ACM Trans. Graph. 36(4), 2017.
 This is a visual posing tool: the elasticity is an idealized model for shaping geometry, not an
 engineering, structural or medical analysis.
 """
-from brushes import registry
+from brushes import flow, registry  # flow registers itself behind Brush.apply
 from brushes.brush import Brush, Grab, Pinch, Scale, Twist
+from brushes.flow import FlowStats
 from brushes.mirror import Mirrored, mirror
 from brushes.quality import format_quality, quality
 from brushes.recipe import Recipe, RecipeError, Stroke, load_recipe, parse_recipe, recipe_to_dict, save_recipe
 
-__all__ = ["Brush", "Grab", "Twist", "Scale", "Pinch", "Mirrored", "mirror", "quality", "format_quality",
+__all__ = ["Brush", "FlowStats", "Grab", "Twist", "Scale", "Pinch", "Mirrored", "mirror", "quality", "format_quality",
            "registry", "Recipe", "RecipeError", "Stroke", "load_recipe", "parse_recipe", "recipe_to_dict",
            "save_recipe"]

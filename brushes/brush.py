@@ -4,7 +4,10 @@ Each brush is a displacement field in space given in closed form by the generate
 (F. de Goes and D. L. James, "Regularized Kelvinlets: Sculpting Brushes based on Fundamental
 Solutions of Elasticity", ACM Trans. Graph. 36(4), 2017). The classes only check arguments,
 work out the elastic load that produces what the artist asked for at the brush centre, and
-forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`.
+forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, which imports this
+module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
+What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`, `exact_flow`
+and `pin_clearance`.
 """
 from __future__ import annotations
 
@@ -13,45 +16,18 @@ import math
 
 import numpy as np
 
-from brushes import kernels
+from brushes import checks, kernels
+
+_integrator = None
 
 
-def _finite_vector(name, value, length=3):
-    try:
-        arr = np.array(value, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name}: must be {length} numbers, got {value!r}") from None
-    if arr.shape != (length,):
-        raise ValueError(f"{name}: must be {length} numbers, got shape {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        raise ValueError(f"{name}: must be finite, got {arr.tolist()}")
-    return arr
+def use_integrator(function):
+    """Register `function(brush, points, *, flow, pins, mask, stats)` behind `Brush.apply`.
 
-
-def _finite_number(name, value):
-    if isinstance(value, bool):
-        raise ValueError(f"{name}: must be a number, got {value!r}")
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name}: must be a number, got {value!r}") from None
-    if not math.isfinite(v):
-        raise ValueError(f"{name}: must be finite, got {value!r}")
-    return v
-
-
-def _positive(name, value):
-    v = _finite_number(name, value)
-    if v <= 0:
-        raise ValueError(f"{name}: must be a positive number, got {value!r}")
-    return v
-
-
-def _poisson(value):
-    v = _finite_number("poisson", value)
-    if not (-1.0 < v <= 0.5):
-        raise ValueError(f"poisson: Poisson's ratio must be in (-1, 0.5], got {value!r}")
-    return v
+    `brushes.flow` registers itself when it is imported (the package's face imports it).
+    """
+    global _integrator
+    _integrator = function
 
 
 def skew(axis):
@@ -95,16 +71,34 @@ class Brush:
         """Upper bound of the velocity field's Lipschitz constant over t in [0, 1]."""
         return self.lipschitz()
 
-    def apply(self, points, *, flow=True, pins=None, mask=None):
+    def exact_flow(self, points):
+        """The time-1 flow map of `velocity` at `points` (n, 3) in closed form, or None.
+
+        None (the default) means the flow integrates the velocity with fold-free RK4 steps.
+        Twist and Scale return their closed forms; a subclass that changes the field must
+        override this too (they return None when `type(self)` is not their own class).
+        """
+        return None
+
+    def pin_clearance(self):
+        """Segments [(start (3,), end (3,)), ...] that pins must keep clear of.
+
+        A point that the brush drives to a set place (a grab's centre along its path) cannot
+        also be held still; the flow refuses pins within `brushes.pins.MIN_CENTER_GAP` radii.
+        """
+        return []
+
+    def apply(self, points, *, flow=True, pins=None, mask=None, stats=None):
         """New positions (n, 3) float64 of `points` under this brush.
 
         flow=False: points + displacement. flow=True: the brush integrated as a velocity field
         over pseudo-time [0, 1] with fold-free steps (see `brushes.flow`). `pins` (m, 3) stay
-        still; `mask` (n,) in [0, 1] scales each point's motion.
+        still; `mask` (n,) in [0, 1] scales each point's motion; `stats`, a
+        `brushes.flow.FlowStats`, receives the step and evaluation counts.
         """
-        from brushes import flow as _flow
-
-        return _flow.apply(self, points, flow=flow, pins=pins, mask=mask)
+        if _integrator is None:  # pragma: no cover - the package's face imports brushes.flow
+            raise RuntimeError("brushes.flow is not imported: import brushes")
+        return _integrator(self, points, flow=flow, pins=pins, mask=mask, stats=stats)
 
     def __eq__(self, other):
         if type(self) is not type(other):
@@ -125,10 +119,10 @@ class _Kelvinlet(Brush):
     default_poisson = 0.5
 
     def __init__(self, center, radius, *, poisson, falloff):
-        self.center = _finite_vector("center", center)
-        self.radius = _positive("radius", radius)
-        self.poisson = _poisson(poisson)
-        self.falloff = falloff
+        self.center = checks.vector("center", center)
+        self.radius = checks.positive("radius", radius)
+        self.poisson = checks.poisson(poisson)
+        self.falloff = checks.choice("falloff", falloff, kernels.FALLOFFS)
         self._eps, self._w = kernels.scales(falloff, self.radius)
         self._beta = kernels.beta_of(self.poisson)
 
@@ -154,7 +148,7 @@ class Grab(_Kelvinlet):
 
     def __init__(self, center, radius, move, *, poisson=0.5, falloff="wide"):
         super().__init__(center, radius, poisson=poisson, falloff=falloff)
-        self.move = _finite_vector("move", move)
+        self.move = checks.vector("move", move)
         norm = kernels.center_value("grab", self._eps, self._w, self._beta)
         self._wn = self._w / norm  # weights carrying the centre normalization
 
@@ -182,6 +176,9 @@ class Grab(_Kelvinlet):
     def reach(self, tol):
         m = float(np.linalg.norm(self.move))
         return kernels.grab_reach(tol, self._eps, self._wn, self._beta, m)
+
+    def pin_clearance(self):
+        return [(self.center, self.center + self.move)]
 
     def velocity(self, points, t, out=None):
         """The grab carried along its own motion: the centre sits at center + t * move."""
@@ -252,13 +249,10 @@ class Twist(_Affine):
 
     def __init__(self, center, radius, axis, degrees, *, poisson=0.5, falloff="wide"):
         super().__init__(center, radius, poisson=poisson, falloff=falloff)
-        axis = _finite_vector("axis", axis)
-        n = float(np.linalg.norm(axis))
-        if n == 0.0:
-            raise ValueError("axis: must not be the zero vector")
-        self.axis = axis / n
+        axis = checks.nonzero_vector("axis", axis)
+        self.axis = axis / float(np.linalg.norm(axis))
         self._axis_given = axis
-        self.degrees = _finite_number("degrees", degrees)
+        self.degrees = checks.number("degrees", degrees)
         self._set_gradient(math.radians(self.degrees) * skew(self.axis))
 
     def params(self):
@@ -267,6 +261,23 @@ class Twist(_Affine):
 
     def flow_gradient(self):
         return self._grad
+
+    def exact_flow(self, points):
+        """Closed-form flow: the field is w(|r|) (axis x r), so each point turns about the axis
+        by an angle that depends only on its distance from the centre (Rodrigues' formula); one
+        field evaluation for any angle."""
+        if type(self) is not Twist:
+            return None
+        q = self.axis
+        r = points - self.center
+        v = self.velocity(points, 0.0)
+        c = np.cross(q, r)
+        cc = np.einsum("ij,ij->i", c, c)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ang = np.where(cc > 0.0, np.einsum("ij,ij->i", v, c) / np.where(cc > 0.0, cc, 1.0), 0.0)
+        cos, sin = np.cos(ang)[:, None], np.sin(ang)[:, None]
+        qr = (r @ q)[:, None]
+        return self.center + r * cos + c * sin + q[None, :] * qr * (1.0 - cos)
 
 
 class Scale(_Affine):
@@ -281,9 +292,9 @@ class Scale(_Affine):
     def __init__(self, center, radius, factor, *, poisson=0.3, falloff="wide"):
         super().__init__(center, radius, poisson=poisson, falloff=falloff)
         if self.poisson >= 0.5:
-            raise ValueError("poisson: Scale needs Poisson's ratio below 0.5: an incompressible material "
-                             "(poisson = 0.5) cannot change volume")
-        self.factor = _positive("factor", factor)
+            raise checks.FieldError("poisson", "Scale needs Poisson's ratio below 0.5: an incompressible "
+                                    "material (poisson = 0.5) cannot change volume")
+        self.factor = checks.positive("factor", factor)
         self._set_gradient((self.factor - 1.0) * np.eye(3))
 
     def params(self):
@@ -292,12 +303,52 @@ class Scale(_Affine):
     def flow_gradient(self):
         return math.log(self.factor) * np.eye(3)
 
+    def _radial_rate(self, rho):
+        """g(rho) of the velocity v = g(|r|) r at radii rho (k,)."""
+        probe = self.center + np.outer(rho, [1.0, 0.0, 0.0])
+        return self.velocity(probe, 0.0)[:, 0] / rho
+
     @functools.cached_property
     def radial_flow_table(self):
-        """The radial flow map's table (see `brushes.flow.radial_flow_table`), built once."""
-        from brushes import flow as _flow
+        """(radii (k,), spline of log(rho(1) / rho(0)) over log rho(0)), built once per brush.
 
-        return _flow.radial_flow_table(self)
+        The radial ODE d rho / dt = g(rho) rho is integrated on 2001 radii from 1e-4 to 1e6
+        radii with many small RK4 steps (1-D, cheap).
+        """
+        from scipy.interpolate import CubicSpline
+
+        rho0 = self.radius * np.logspace(-4, 6, 2001)
+        n_steps = max(64, math.ceil(40 * abs(math.log(self.factor))))
+        h = 1.0 / n_steps
+        rho = rho0.copy()
+        f = lambda q: self._radial_rate(q) * q  # noqa: E731
+        for _ in range(n_steps):
+            k1 = f(rho)
+            k2 = f(rho + 0.5 * h * k1)
+            k3 = f(rho + 0.5 * h * k2)
+            k4 = f(rho + h * k3)
+            rho = rho + h / 6.0 * (k1 + 2 * k2 + 2 * k3 + k4)
+        return rho0, CubicSpline(np.log(rho0), np.log(rho / rho0))
+
+    def exact_flow(self, points):
+        """Flow to table accuracy: the field is radial, g(|r|) r, so each point slides along its
+        ray from the centre by the radial ODE's solution, solved once on a table of radii."""
+        if type(self) is not Scale:
+            return None
+        rho0, spline = self.radial_flow_table
+        r = points - self.center
+        d = np.sqrt(np.einsum("ij,ij->i", r, r))
+        lo, hi = rho0[0], rho0[-1]
+        lr = np.empty_like(d)
+        inner = d <= lo
+        outer = d >= hi
+        mid = ~(inner | outer)
+        lr[mid] = spline(np.log(d[mid]))
+        # near the centre the core grows by exactly `factor` (log ratio -> log factor, error O(rho^2))
+        lr[inner] = math.log(self.factor)
+        if np.any(outer):
+            lr[outer] = self._radial_rate(d[outer])  # far field: g is tiny and nearly constant
+        return self.center + r * np.exp(lr)[:, None]
 
 
 class Pinch(_Affine):
@@ -307,19 +358,13 @@ class Pinch(_Affine):
 
     def __init__(self, center, radius, gradient, *, poisson=0.5, falloff="wide"):
         super().__init__(center, radius, poisson=poisson, falloff=falloff)
-        try:
-            g = np.array(gradient, dtype=np.float64)
-        except (TypeError, ValueError):
-            raise ValueError(f"gradient: must be a 3x3 matrix of numbers, got {gradient!r}") from None
-        if g.shape != (3, 3):
-            raise ValueError(f"gradient: must be a 3x3 matrix, got shape {g.shape}")
-        if not np.all(np.isfinite(g)):
-            raise ValueError("gradient: must be finite")
+        g = checks.matrix3("gradient", gradient)
         scale = max(1.0, float(np.abs(g).max()))
         if not np.allclose(g, g.T, rtol=0, atol=1e-9 * scale):
-            raise ValueError("gradient: must be symmetric (pinch is the symmetric traceless load)")
+            raise checks.FieldError("gradient", "must be symmetric (pinch is the symmetric traceless load)")
         if abs(np.trace(g)) > 1e-9 * scale:
-            raise ValueError(f"gradient: must be traceless (trace is {np.trace(g):.3g}); use Scale to change volume")
+            raise checks.FieldError("gradient", f"must be traceless (trace is {np.trace(g):.3g}); "
+                                    "use Scale to change volume")
         self.gradient = g
         self._set_gradient(0.5 * (g + g.T) - np.trace(g) / 3.0 * np.eye(3))
 

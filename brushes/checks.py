@@ -40,7 +40,7 @@ class FieldError(ValueError):
 
 def number(name, value):
     """A finite float. Booleans are refused (True is not a radius)."""
-    if isinstance(value, (bool, np.bool_)):
+    if isinstance(value, (bool, np.bool_, str, bytes)):
         raise FieldError(name, f"must be a number, got {value!r}")
     try:
         v = float(value)
@@ -67,10 +67,25 @@ def poisson(value, name="poisson"):
     return v
 
 
+def _numeric(value):
+    """`value` as a float64 array; text and booleans are refused rather than converted."""
+    if not _all_numbers(value):
+        raise TypeError("not numbers")
+    return np.array(value, dtype=np.float64)
+
+
+def _all_numbers(value):
+    if isinstance(value, np.ndarray):
+        return value.dtype.kind in "iuf"
+    if isinstance(value, (list, tuple)):
+        return all(_all_numbers(v) for v in value)
+    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
+
+
 def vector(name, value, length=3):
     """A finite (length,) float64 array."""
     try:
-        arr = np.array(value, dtype=np.float64)
+        arr = _numeric(value)
     except (TypeError, ValueError):
         raise FieldError(name, f"must be {length} numbers, got {value!r}") from None
     if arr.shape != (length,):
@@ -91,7 +106,7 @@ def nonzero_vector(name, value):
 def matrix3(name, value):
     """A finite (3, 3) float64 array."""
     try:
-        arr = np.array(value, dtype=np.float64)
+        arr = _numeric(value)
     except (TypeError, ValueError):
         raise FieldError(name, f"must be a 3x3 matrix of numbers, got {value!r}") from None
     if arr.shape != (3, 3):
@@ -101,26 +116,27 @@ def matrix3(name, value):
     return arr
 
 
-def points(name, value, *, rows=None, keep_float32=False, allow_single=False):
+def points(name, value, *, rows=None, keep_float32=False, allow_single=False, letter="n"):
     """An (n, 3) array of finite numbers.
 
     rows : int or None, the number of rows required (for example the vertices of a document).
     keep_float32 : a float32 array is passed through as it is (the kernels take both); anything
         else becomes float64.
     allow_single : a (3,) input is taken as one row (pins given as one point).
+    letter : the name of the row count in messages ("m" for pins: "(m, 3)").
     """
     try:
         arr = np.asarray(value)
         if not (keep_float32 and arr.dtype == np.float32):
             arr = np.asarray(arr, dtype=np.float64)
     except (TypeError, ValueError):
-        raise FieldError(name, f"must be an (n, 3) array of numbers, got {type(value).__name__}") from None
+        raise FieldError(name, f"must be an ({letter}, 3) array of numbers, got {type(value).__name__}") from None
     if allow_single and arr.shape == (3,):
         arr = arr[None, :]
     if allow_single and arr.size == 0:
         arr = arr.reshape(0, 3)
     if arr.ndim != 2 or arr.shape[1] != 3:
-        raise FieldError(name, f"must have shape (n, 3), got {arr.shape}")
+        raise FieldError(name, f"must have shape ({letter}, 3), got {arr.shape}")
     if rows is not None and len(arr) != rows:
         raise FieldError(name, f"must have shape ({rows}, 3), got {arr.shape}")
     if not np.all(np.isfinite(arr)):

@@ -3,8 +3,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from brushes import kernels
-from brushes.brush import Brush, _finite_vector
+from brushes import checks, kernels
+from brushes.brush import Brush
 
 
 class Mirrored(Brush):
@@ -19,15 +19,12 @@ class Mirrored(Brush):
 
     def __init__(self, brush, normal, point=(0.0, 0.0, 0.0)):
         if not isinstance(brush, Brush):
-            raise ValueError(f"brush: must be a Brush, got {type(brush).__name__}")
-        n = _finite_vector("normal", normal)
-        length = float(np.linalg.norm(n))
-        if length == 0.0:
-            raise ValueError("normal: must not be the zero vector")
+            raise checks.FieldError("brush", f"must be a Brush, got {type(brush).__name__}")
+        n = checks.nonzero_vector("normal", normal)
         self.brush = brush
-        self.normal = n / length
+        self.normal = n / float(np.linalg.norm(n))
         self._normal_given = n
-        self.point = _finite_vector("point", point)
+        self.point = checks.vector("point", point)
         self.H = np.eye(3) - 2.0 * np.outer(self.normal, self.normal)
         self._shift = 2.0 * float(self.point @ self.normal) * self.normal
         for name in ("center", "radius", "poisson"):
@@ -60,6 +57,14 @@ class Mirrored(Brush):
         v = self.brush.velocity(points, t, out=out)
         v += self._flip(self.brush.velocity(self.reflect(points), t))
         return v
+
+    def pin_clearance(self):
+        """The inner brush's segments and their mirror images."""
+        out = []
+        for start, end in self.brush.pin_clearance():
+            ends = self.reflect(np.stack([start, end]))
+            out += [(start, end), (ends[0], ends[1])]
+        return out
 
     def lipschitz(self):
         return 2.0 * self.brush.lipschitz()

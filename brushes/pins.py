@@ -15,27 +15,15 @@ from __future__ import annotations
 import numpy as np
 import scipy.linalg
 
-from brushes import kernels
+from brushes import checks, kernels
 
 MIN_CENTER_GAP = 0.25
 MAX_CONDITION = 1e10
 
 
 def check_pins(pins):
-    """Convert and check `pins`: (m, 3) float64 finite; an empty list gives (0, 3)."""
-    try:
-        arr = np.asarray(pins, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise ValueError("pins: must be an (m, 3) array of numbers") from None
-    if arr.size == 0:
-        return np.zeros((0, 3))
-    if arr.ndim == 1 and arr.shape == (3,):
-        arr = arr[None, :]
-    if arr.ndim != 2 or arr.shape[1] != 3:
-        raise ValueError(f"pins: must have shape (m, 3), got {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        raise ValueError("pins: must be finite")
-    return np.ascontiguousarray(arr)
+    """Convert and check `pins`: (m, 3) float64 finite; one point (3,) or an empty list is fine."""
+    return np.ascontiguousarray(checks.points("pins", pins, allow_single=True, letter="m"))
 
 
 class PinSolver:
@@ -60,7 +48,7 @@ class PinSolver:
         cond = np.linalg.cond(M)
         if not np.isfinite(cond) or cond > MAX_CONDITION:
             i, j, d = _closest_pair(self.pins)
-            raise ValueError(f"pins: pins {i} and {j} are {d:.3g} apart, closer than the solve can separate "
+            raise checks.FieldError(f"pins[{j}]", f"pins {i} and {j} are {d:.3g} apart, closer than the solve can separate "
                              f"(keep pins at least {1e-4 * self.radius:.3g}, 1e-4 radii, apart)")
         self._lu = scipy.linalg.lu_factor(M)
         self._unit_bound = kernels.gradient_bound("grab", "wide", self.poisson) / self.radius
@@ -96,7 +84,7 @@ def check_centre_gap(pins, centers, radius):
     bad = np.flatnonzero(d < MIN_CENTER_GAP * radius)
     if bad.size:
         i = int(bad[0])
-        raise ValueError(f"pins: pin {i} is {d[i]:.3g} from the grab's centre{' path' if denom else ''}, "
+        raise checks.FieldError(f"pins[{i}]", f"pin {i} is {d[i]:.3g} from the grab's centre{' path' if denom else ''}, "
                          f"closer than {MIN_CENTER_GAP} radii: a point cannot both move and stay still")
 
 

@@ -43,7 +43,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from brushes import registry
+from brushes import checks, registry
 
 __all__ = ["FORMAT", "VERSION", "OPTIONAL_KEYS", "RecipeError", "Stroke", "Recipe",
            "parse_recipe", "parse_stroke", "apply_stroke", "load_recipe", "recipe_to_dict", "dumps_recipe", "save_recipe"]
@@ -52,7 +52,6 @@ FORMAT = "pliant-recipe"
 VERSION = 1
 OPTIONAL_KEYS = ("flow", "pins", "mirror", "mask")
 _TOP_KEYS = ("format", "version", "strokes")
-_BUILTIN_KINDS = ("grab", "twist", "scale", "pinch")
 
 
 class RecipeError(ValueError):
@@ -148,14 +147,6 @@ def _vector(value, where, problems, *, length=3, nonzero=False):
     return out
 
 
-def _matrix3(value, where, problems):
-    if not isinstance(value, list) or len(value) != 3:
-        problems.append(f"{where}: must be a 3 x 3 list of lists of numbers, got {_show(value)}")
-        return None
-    rows = [_vector(row, f"{where}[{i}]", problems) for i, row in enumerate(value)]
-    return None if any(r is None for r in rows) else rows
-
-
 def _string(value, where, problems):
     if not isinstance(value, str) or not value:
         problems.append(f"{where}: must be a non-empty string, got {_show(value)}")
@@ -184,20 +175,6 @@ def _json_value(value, where, problems):
         return value
     problems.append(f"{where}: must be a JSON value, got {type(value).__name__}")
     return None
-
-
-#: Types of the built-in brushes' parameters (the brush constructor checks ranges further).
-_FIELDS = {
-    "center": _vector,
-    "radius": lambda v, w, p: _number(v, w, p, positive=True),
-    "move": _vector,
-    "axis": lambda v, w, p: _vector(v, w, p, nonzero=True),
-    "degrees": _number,
-    "factor": lambda v, w, p: _number(v, w, p, positive=True),
-    "gradient": _matrix3,
-    "poisson": _number,
-    "falloff": _string,
-}
 
 
 def _plain(value):
@@ -318,12 +295,9 @@ def _check_stroke(d, where):
     for k in required:
         if k not in d:
             problems.append(f"{where}.{k}: missing (required by brush {kind!r})")
-    params = {}
-    for k in names:
-        if k in d:
-            check = _FIELDS.get(k) if kind in _BUILTIN_KINDS else None
-            value = (check or _json_value)(d[k], f"{where}.{k}", problems)
-            params[k] = value
+    # JSON-level checks only (finite numbers); each brush checks its own fields and its errors
+    # name the field (`brushes.checks.FieldError`), so nothing is checked twice here.
+    params = {k: _json_value(d[k], f"{where}.{k}", problems) for k in names if k in d}
     flow, pins, mirror, mask = _check_optional(
         {k: v for k, v in d.items() if k in OPTIONAL_KEYS and k not in names}, where, problems)
     if problems:
@@ -331,28 +305,32 @@ def _check_stroke(d, where):
     fields = {"kind": kind, "params": params, "flow": flow, "pins": pins, "mirror": mirror,
               "mask": mask}
     try:
-        _build(fields)
-    except ValueError as exc:
-        msg = str(exc)
-        m = re.match(r"[A-Za-z_][A-Za-z0-9_]*", msg)
-        if m and m.group(0) in allowed:
-            problems.append(f"{where}.{msg}")
-        elif msg.startswith("mirror:") or msg.startswith("normal") or msg.startswith("point"):
-            problems.append(f"{where}.mirror.{msg.removeprefix('mirror:').strip()}")
-        else:
-            problems.append(f"{where}: {msg}")
+        _build(fields, where)
+    except RecipeError as exc:
+        problems.extend(exc.problems)
     except TypeError as exc:  # a constructor that does not take its own parameters by keyword
         problems.append(f"{where}: brush {kind!r} cannot be built from keywords: {exc}")
     return (None if problems else fields), problems
 
 
-def _build(fields):
-    """Build the brush of a validated stroke."""
-    brush = registry.lookup(fields["kind"])(**fields["params"])
+def _build(fields, where="stroke"):
+    """Build the brush of a validated stroke; a bad field raises RecipeError naming it under `where`."""
+    try:
+        brush = registry.lookup(fields["kind"])(**fields["params"])
+    except checks.FieldError as exc:
+        raise RecipeError([str(exc.within(where))]) from None
+    except ValueError as exc:
+        # a plug-in brush that raises a plain ValueError "name: reason", as DEVELOPERS.md allows
+        name, sep, _ = str(exc).partition(":")
+        known = _signature(registry.lookup(fields["kind"]))[0]
+        raise RecipeError([f"{where}.{exc}" if sep and name in known else f"{where}: {exc}"]) from None
     if fields["mirror"] is not None:
         from brushes.mirror import mirror
 
-        brush = mirror(brush, fields["mirror"]["normal"], fields["mirror"]["point"])
+        try:
+            brush = mirror(brush, fields["mirror"]["normal"], fields["mirror"]["point"])
+        except checks.FieldError as exc:
+            raise RecipeError([str(exc.within(f"{where}.mirror"))]) from None
     return brush
 
 
@@ -472,7 +450,12 @@ class Stroke:
         pts = _check_points(points)
         pins = None if self.pins is None else np.asarray(self.pins, dtype=np.float64)
         mask = self.weights(len(pts), groups=groups, where=_where)
-        return self.brush().apply(pts, flow=self.flow, pins=pins, mask=mask)
+        try:
+            return self.brush().apply(pts, flow=self.flow, pins=pins, mask=mask)
+        except checks.FieldError as exc:
+            if exc.field.split("[")[0] in ("pins", "mask"):  # the stroke's own fields
+                raise RecipeError([str(exc.within(_where))]) from None
+            raise
 
 
 @dataclass(frozen=True)
