@@ -105,8 +105,11 @@ def test_bad_arguments(tmp_path):
 
 _CHILD = textwrap.dedent(
     """
-    import sys, time
+    import signal, sys, time
     from brushes.atomic import atomic_write
+    # A child of a non-interactive background job starts with SIGINT ignored (POSIX, common
+    # practice of shells); a program that honours Ctrl-C restores the default, as `pliant` does.
+    signal.signal(signal.SIGINT, signal.default_int_handler)
     with atomic_write(sys.argv[1]) as f:
         f.write(b"N" * 100_000)
         f.flush()
