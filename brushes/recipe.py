@@ -334,13 +334,6 @@ def _build(fields, where="stroke"):
     return brush
 
 
-def _check_points(points) -> np.ndarray:
-    pts = np.asarray(points, dtype=np.float64)
-    if pts.ndim != 2 or pts.shape[1] != 3:
-        raise ValueError(f"points: must have shape (n, 3), got {pts.shape}")
-    return pts
-
-
 @dataclass(frozen=True)
 class Stroke:
     """One brush stroke: a brush kind with its keyword arguments, plus how to apply it.
@@ -447,7 +440,7 @@ class Stroke:
 
         Exactly ``self.brush().apply(points, flow=flow, pins=pins, mask=weights)``.
         """
-        pts = _check_points(points)
+        pts = checks.points("points", points)
         pins = None if self.pins is None else np.asarray(self.pins, dtype=np.float64)
         mask = self.weights(len(pts), groups=groups, where=_where)
         try:
@@ -482,7 +475,7 @@ class Recipe:
 
         groups : mapping name -> vertex indices or boolean (n,) mask, for group masks.
         """
-        pts = _check_points(points)
+        pts = checks.points("points", points)
         out = pts.copy()
         for i, stroke in enumerate(self.strokes):
             out = stroke.apply(out, groups=groups, _where=f"strokes[{i}]")

@@ -122,6 +122,8 @@ def affine_map(points, A, b, out=None):
 
 
 def _as_points(points):
+    """The kernels' own cheap guard: shape and dtype only. Finiteness and the field name are
+    checked once at the API's entry (`brushes.checks.points`), not at every RK4 stage."""
     pts = np.asarray(points)
     if pts.ndim != 2 or pts.shape[1] != 3:
         raise ValueError(f"points: must have shape (n, 3), got {pts.shape}")
