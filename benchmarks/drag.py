@@ -7,7 +7,7 @@ generated wavy torus (:func:`benchmarks.picking.wavy_torus`) in a headless OpenG
    ``reach(tol)``, and the preview displacement ``response @ move`` with the grab response
    (``brushes.Grab.response``) computed once per press, put back in vertex order;
 2. normals: float32 positions and area-weighted vertex normals through the sparse
-   vertex-face operator (:func:`viewer.render.vertex_normals`);
+   vertex-face operator (:class:`viewer.render.NormalField`, formulas of :mod:`brushes.surface`);
 3. upload: positions and normals replaced in place with ``glBufferSubData``, then
    ``glFinish`` so the copy has really happened.
 
@@ -68,7 +68,7 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
     try:
         from pyglet import gl
 
-        from viewer.render import MeshRenderer, vertex_normals
+        from viewer.render import MeshRenderer
         renderer = MeshRenderer(vertices, faces)
         session.press(x, y, LEFT)
         t = time.perf_counter()
@@ -81,8 +81,7 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
             session.drag(x + 1 + 2 * i, y + i, 2, 1, LEFT)
             t1 = time.perf_counter()
             positions = session.shown().astype(np.float32)
-            vertex_normals(renderer.normal_operator, positions, renderer.faces,
-                           out=renderer.normals, normalize=False, work=renderer._face_work)
+            renderer.field.full(positions)
             t2 = time.perf_counter()
             renderer.set_positions(positions, normals=renderer.normals)
             gl.glFinish()
@@ -92,7 +91,7 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
             normals_ms.append(1e3 * (t2 - t1))
             upload_ms.append(1e3 * (t3 - t2))
             total_ms.append(1e3 * (t3 - t0))
-        drag = session._drag
+        drag = session._drag.state
         reach_fraction = drag.touched_count / len(vertices)
         session.cancel()
         renderer.delete()

@@ -7,8 +7,8 @@ import pytest
 import trimesh
 
 from viewer import session as session_module
-from viewer.session import (BINDINGS, LEFT, MIDDLE, MOD_CTRL, MOD_SHIFT, RIGHT, Session, chord,
-                            mesh_volume)
+from viewer.session import (BINDINGS, LEFT, MIDDLE, MOD_CTRL, MOD_SHIFT, MOUSE_ACTIONS, RIGHT,
+                            Session, chord)
 
 W, H = 640, 480
 
@@ -35,14 +35,17 @@ def test_chord_names_hand_cases():
     assert chord("S", 64) == "Ctrl+S"  # Command counts as Ctrl
 
 
-def test_bindings_table_is_consistent():
+def test_bindings_table_is_consistent(session):
     keys = [k for k, _, _ in BINDINGS]
     assert len(keys) == len(set(keys)), "a key is bound twice"
-    mouse_only = {"stroke", "orbit", "pan", "zoom", "radius"}
+    assert MOUSE_ACTIONS == {"stroke", "orbit", "pan", "zoom", "radius"}
+    runnable = session.actions()
     for key, action, description in BINDINGS:
         assert description
-        if action not in mouse_only:
-            assert hasattr(Session, f"_do_{action}"), action
+        if action not in MOUSE_ACTIONS:
+            assert action in runnable, action
+    # Every registered tool is selected by a key of the table.
+    assert {f"tool_{name}" for name in session.tools} <= {a for _, a, _ in BINDINGS}
     # House rule: no bare letter keys (the big suites' single-letter transform shortcuts).
     assert not [k for k in keys if len(k) == 1 and k.isalpha()]
 
@@ -62,16 +65,18 @@ def test_mouse_and_modifier_values_match_pyglet():
     assert (MOD_SHIFT, MOD_CTRL) == (1, 2)
 
 
-def test_mesh_volume_matches_trimesh():
+def test_volume_of_the_loaded_mesh_matches_trimesh(tmp_path):
     # Reference: trimesh.Trimesh.volume (its own mass-properties integration).
     for mesh in (trimesh.creation.icosphere(subdivisions=3), trimesh.creation.box([1, 2, 3]),
                  trimesh.creation.capsule(height=1.0, radius=0.3)):
-        assert mesh_volume(mesh.vertices, mesh.faces) == pytest.approx(mesh.volume, rel=1e-12)
+        s = Session(mesh.vertices, mesh.faces, size=(W, H), out_dir=tmp_path)
+        assert s.volume_rest == pytest.approx(mesh.volume, rel=1e-12)
     # Hand case: the unit cube has volume 1 wherever it sits.
     cube = trimesh.creation.box([1, 1, 1])
-    assert mesh_volume(cube.vertices + 5.0, cube.faces) == pytest.approx(1.0)
+    s = Session(cube.vertices + 5.0, cube.faces, size=(W, H), out_dir=tmp_path)
+    assert s.volume_rest == pytest.approx(1.0)
     with pytest.raises(ValueError, match="^vertices"):
-        mesh_volume(np.zeros((3, 2)), [[0, 1, 2]])
+        Session(np.zeros((3, 2)), [[0, 1, 2]])
 
 
 def test_key_settings(session):
@@ -260,7 +265,7 @@ def test_preview_is_the_one_step_displacement_within_tolerance(session, sphere, 
     while session.falloff != falloff:
         session.key("SEMICOLON")
     _drag(session, (W / 2 + 15, H / 2 + 5), (W / 2 + 45, H / 2 + 35))
-    drag = session._drag
+    drag = session._drag.state
     kwargs = {k: v for k, v in drag.params.items() if k != "kind"}
     brush = registry.lookup(drag.params["kind"])(**kwargs, poisson=session.poisson[drag.kind],
                                                   falloff=falloff)
@@ -282,11 +287,13 @@ def test_release_commits_exactly_the_recipe_stroke(session, sphere):
     np.testing.assert_array_equal(session.vertices, expected)
     np.testing.assert_array_equal(session.shown(), expected)
     assert np.abs(preview - expected).max() > 0  # the preview was the cheaper one-step field
-    message = session.save_recipe()
-    path = message.split(": ", 1)[1]
+    assert session.key("S", MOD_CTRL) == "save_recipe"
+    path = session.message.split(": ", 1)[1]
     np.testing.assert_array_equal(load_recipe(path).apply(sphere[0]), expected)
+    # Reference: trimesh's volumes of the posed and rest meshes.
     assert session.status()["volume_change"] == pytest.approx(
-        mesh_volume(expected, sphere[1]) / mesh_volume(*sphere) - 1)
+        trimesh.Trimesh(expected, sphere[1], process=False).volume
+        / trimesh.Trimesh(*sphere, process=False).volume - 1, abs=1e-12)
 
 
 def test_click_without_motion_and_cancel_make_no_stroke(session, sphere):
@@ -343,7 +350,7 @@ def test_exports_use_the_command_writers(session, sphere, tmp_path):
     import json
     import struct
     from brushes.correctives import apply_delta
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
     _drag(session, (W / 2, H / 2), (W / 2 + 25, H / 2 + 25))
     session.release(W / 2 + 25, H / 2 + 25, LEFT)
     posed = np.asarray(session.vertices)
@@ -376,7 +383,7 @@ def test_settings_changed_mid_drag_apply_to_the_next_stroke(session):
 
 
 def test_grab_preview_backends_agree_with_the_plain_formula():
-    from viewer.session import _grab_preview_numba, grab_preview
+    from viewer.tools.strokes import _grab_preview_numba, grab_preview
     rng = np.random.default_rng(5)
     n = 50
     response = rng.normal(size=(n, 3, 3)).astype(np.float32)

@@ -24,7 +24,7 @@ from viewer.snapshot import VIEW_PRESETS, ViewSpecError, parse_size, parse_view
 ROOT = Path(__file__).resolve().parents[1]
 
 
-def _python(code, *, timeout=120):
+def _python(code, *, timeout=1800):  # a hang guard, not a speed limit
     """Run ``code`` in a fresh interpreter at the project root; return the completed process."""
     env = dict(os.environ, PYTHONPATH=str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", ""))
     return subprocess.run([sys.executable, "-c", textwrap.dedent(code)], cwd=ROOT, env=env,

@@ -51,7 +51,7 @@ def load_model(mesh_path=None):
         and journal in the current folder, nothing written into the package), or a generated
         sphere when the model is not installed (outputs in the current folder, no journal).
     """
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
     if mesh_path is not None:
         doc = load_mesh(mesh_path)
         return {"vertices": doc.vertices, "faces": doc.faces, "doc": doc,

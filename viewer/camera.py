@@ -32,6 +32,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from brushes import checks
+
 __all__ = ["OrbitCamera", "look_at", "perspective", "as_gl"]
 
 WORLD_UP = np.array([0.0, 1.0, 0.0])
@@ -39,24 +41,8 @@ WORLD_UP = np.array([0.0, 1.0, 0.0])
 PITCH_LIMIT = math.pi / 2 - 1e-3
 
 
-def _vector3(value, name):
-    v = np.asarray(value, dtype=np.float64)
-    if v.shape != (3,):
-        raise ValueError(f"{name}: must have shape (3,), got {v.shape}")
-    if not np.all(np.isfinite(v)):
-        raise ValueError(f"{name}: must be finite, got {v.tolist()}")
-    return v
-
-
-def _positive(value, name):
-    v = float(value)
-    if not (math.isfinite(v) and v > 0):
-        raise ValueError(f"{name}: must be a finite number > 0, got {value!r}")
-    return v
-
-
 def _window(width, height):
-    return _positive(width, "width"), _positive(height, "height")
+    return checks.positive("width", width), checks.positive("height", height)
 
 
 def look_at(eye, target, up=WORLD_UP):
@@ -66,18 +52,18 @@ def look_at(eye, target, up=WORLD_UP):
     unit forward ``f = (target - eye)/|target - eye|``, side ``s = f x up / |f x up|`` and
     ``u = s x f``, times a translation by ``-eye``.
     """
-    eye = _vector3(eye, "eye")
-    target = _vector3(target, "target")
-    up = _vector3(up, "up")
+    eye = checks.vector("eye", eye)
+    target = checks.vector("target", target)
+    up = checks.vector("up", up)
     f = target - eye
     nf = np.linalg.norm(f)
     if nf == 0:
-        raise ValueError("target: must differ from eye")
+        raise checks.FieldError("target", "must differ from eye")
     f = f / nf
     s = np.cross(f, up)
     ns = np.linalg.norm(s)
     if ns < 1e-12:
-        raise ValueError("up: must not be parallel to the view direction")
+        raise checks.FieldError("up", "must not be parallel to the view direction")
     s = s / ns
     u = np.cross(s, f)
     m = np.eye(4)
@@ -93,14 +79,14 @@ def perspective(fov_y, aspect, near, far):
     With ``c = cot(fov_y / 2)``: ``[[c/aspect, 0, 0, 0], [0, c, 0, 0],
     [0, 0, (far+near)/(near-far), 2 far near/(near-far)], [0, 0, -1, 0]]``.
     """
-    fov_y = _positive(fov_y, "fov_y")
+    fov_y = checks.positive("fov_y", fov_y)
     if fov_y >= math.pi:
-        raise ValueError(f"fov_y: must be below pi radians, got {fov_y}")
-    aspect = _positive(aspect, "aspect")
-    near = _positive(near, "near")
-    far = _positive(far, "far")
+        raise checks.FieldError("fov_y", f"must be below pi radians, got {fov_y}")
+    aspect = checks.positive("aspect", aspect)
+    near = checks.positive("near", near)
+    far = checks.positive("far", far)
     if far <= near:
-        raise ValueError(f"far: must exceed near ({near}), got {far}")
+        raise checks.FieldError("far", f"must exceed near ({near}), got {far}")
     c = 1.0 / math.tan(fov_y / 2)
     m = np.zeros((4, 4))
     m[0, 0] = c / aspect
@@ -115,7 +101,7 @@ def as_gl(matrix):
     """The 16 entries of a (4, 4) matrix in OpenGL's column-major order, as a tuple of floats."""
     m = np.asarray(matrix, dtype=np.float64)
     if m.shape != (4, 4):
-        raise ValueError(f"matrix: must have shape (4, 4), got {m.shape}")
+        raise checks.FieldError("matrix", f"must have shape (4, 4), got {m.shape}")
     return tuple(float(x) for x in m.T.ravel())
 
 
@@ -140,17 +126,17 @@ class OrbitCamera:
     far_ratio: float = 100.0
 
     def __post_init__(self):
-        self.target = _vector3(self.target, "target")
-        self.distance = _positive(self.distance, "distance")
-        self.fov_y = _positive(self.fov_y, "fov_y")
+        self.target = checks.vector("target", self.target)
+        self.distance = checks.positive("distance", self.distance)
+        self.fov_y = checks.positive("fov_y", self.fov_y)
         if self.fov_y >= math.pi:
-            raise ValueError(f"fov_y: must be below pi radians, got {self.fov_y}")
+            raise checks.FieldError("fov_y", f"must be below pi radians, got {self.fov_y}")
         self.yaw = float(self.yaw)
         self.pitch = min(max(float(self.pitch), -PITCH_LIMIT), PITCH_LIMIT)
-        self.near_ratio = _positive(self.near_ratio, "near_ratio")
-        self.far_ratio = _positive(self.far_ratio, "far_ratio")
+        self.near_ratio = checks.positive("near_ratio", self.near_ratio)
+        self.far_ratio = checks.positive("far_ratio", self.far_ratio)
         if self.far_ratio <= self.near_ratio:
-            raise ValueError("far_ratio: must exceed near_ratio")
+            raise checks.FieldError("far_ratio", "must exceed near_ratio")
 
     # -- frame vectors -------------------------------------------------------------------
     def view_axis(self):
@@ -200,7 +186,7 @@ class OrbitCamera:
 
     def world_per_pixel(self, height):
         """World length covered by one window unit at the target's depth."""
-        return 2.0 * self.distance * math.tan(self.fov_y / 2) / _positive(height, "height")
+        return 2.0 * self.distance * math.tan(self.fov_y / 2) / checks.positive("height", height)
 
     def pan(self, dx, dy, height):
         """Slide the target so the scene at the target's depth follows a drag of ``(dx, dy)``."""
@@ -209,7 +195,7 @@ class OrbitCamera:
 
     def zoom(self, factor):
         """Divide the distance by ``factor`` (> 1 moves closer); e.g. ``zoom(1.1 ** wheel_steps)``."""
-        self.distance = self.distance / _positive(factor, "factor")
+        self.distance = self.distance / checks.positive("factor", factor)
 
     def frame(self, bounds_min, bounds_max, *, aspect=1.0, margin=1.05):
         """Aim at the box centre and back off until the whole box is in view (frame all).
@@ -218,12 +204,12 @@ class OrbitCamera:
         The distance makes the box's bounding sphere (radius times ``margin``) fit inside the
         narrower of the vertical and horizontal fields of view; yaw and pitch are kept.
         """
-        lo = _vector3(bounds_min, "bounds_min")
-        hi = _vector3(bounds_max, "bounds_max")
+        lo = checks.vector("bounds_min", bounds_min)
+        hi = checks.vector("bounds_max", bounds_max)
         if np.any(hi < lo):
-            raise ValueError("bounds_max: must be >= bounds_min on every axis")
-        aspect = _positive(aspect, "aspect")
-        margin = _positive(margin, "margin")
+            raise checks.FieldError("bounds_max", "must be >= bounds_min on every axis")
+        aspect = checks.positive("aspect", aspect)
+        margin = checks.positive("margin", margin)
         radius = max(0.5 * float(np.linalg.norm(hi - lo)) * margin, 1e-9)
         half_y = self.fov_y / 2
         half_x = math.atan(math.tan(half_y) * aspect)
@@ -254,7 +240,7 @@ class OrbitCamera:
         if single:
             p = p[None]
         if p.ndim != 2 or p.shape[1] != 3:
-            raise ValueError(f"points: must have shape (3,) or (n, 3), got {p.shape}")
+            raise checks.FieldError("points", f"must have shape (3,) or (n, 3), got {p.shape}")
         width, height = _window(width, height)
         rel = p - self.eye()
         depth = rel @ self.view_axis()

@@ -330,7 +330,7 @@ def plot_falloffs(path, *, size=(960, 420)):
 def _load_demo(models=None):
     """(MeshDoc, Recipe) of the bundled mascot, found as ``pliant demo`` finds them."""
     from brushes.demo import find_models
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
     from brushes.recipe import load_recipe
 
     mesh_path, recipe_path = find_models(models)

@@ -34,7 +34,7 @@ import math
 
 import numpy as np
 
-from viewer.camera import _positive  # one checker for positive numbers in the viewer
+from brushes import checks
 
 __all__ = [
     "grab", "twist", "scale", "pinch", "drag_params", "plane_point",
@@ -44,35 +44,14 @@ __all__ = [
 KINDS = ("grab", "twist", "scale", "pinch")
 
 
-def _vector3(value, name):
-    v = np.asarray(value, dtype=np.float64)
-    if v.shape != (3,) or not np.all(np.isfinite(v)):
-        raise ValueError(f"{name}: must be a finite (3,) vector, got shape {v.shape}")
-    return v
-
-
-def _pixel(value, name):
-    p = np.asarray(value, dtype=np.float64)
-    if p.shape != (2,) or not np.all(np.isfinite(p)):
-        raise ValueError(f"{name}: must be a finite (x, y) window point, got shape {p.shape}")
-    return p
-
-
-def _finite(value, name):
-    v = float(value)
-    if not math.isfinite(v):
-        raise ValueError(f"{name}: must be finite, got {value!r}")
-    return v
-
-
 def _base(kind, center, radius):
-    return {"kind": kind, "center": _vector3(center, "center").tolist(), "radius": _positive(radius, "radius")}
+    return {"kind": kind, "center": checks.vector("center", center).tolist(), "radius": checks.positive("radius", radius)}
 
 
 def plane_point(camera, px, py, width, height, anchor):
     """Where the eye ray through window point ``(px, py)`` meets the plane through ``anchor``
     perpendicular to the view axis.  anchor : (3,) float64; returns (3,) float64."""
-    anchor = _vector3(anchor, "anchor")
+    anchor = checks.vector("anchor", anchor)
     origin, direction = camera.ray(px, py, width, height)
     axis = camera.view_axis()
     # direction . axis >= cos(half the diagonal field of view) > 0, so the ray always meets it.
@@ -83,7 +62,7 @@ def plane_point(camera, px, py, width, height, anchor):
 def grab(camera, center, radius, start, current, width, height):
     """Grab: ``move`` (3,) is the cursor's world displacement in the view plane through ``center``."""
     params = _base("grab", center, radius)
-    s, c = _pixel(start, "start"), _pixel(current, "current")
+    s, c = checks.vector("start", start, length=2), checks.vector("current", current, length=2)
     p0 = plane_point(camera, s[0], s[1], width, height, params["center"])
     p1 = plane_point(camera, c[0], c[1], width, height, params["center"])
     params["move"] = (p1 - p0).tolist()
@@ -94,28 +73,25 @@ def twist(camera, center, radius, start, current, *, normal=None, degrees_per_pi
     """Twist: ``degrees = degrees_per_pixel * dx`` about the view axis, or about ``normal``
     ((3,) float64, need not be unit) turned to point into the screen."""
     params = _base("twist", center, radius)
-    dx = float(_pixel(current, "current")[0] - _pixel(start, "start")[0])
+    dx = float(checks.vector("current", current, length=2)[0] - checks.vector("start", start, length=2)[0])
     view = camera.view_axis()
     if normal is None:
         axis = view
     else:
-        axis = _vector3(normal, "normal")
-        n = float(np.linalg.norm(axis))
-        if n == 0:
-            raise ValueError("normal: must not be zero")
-        axis = axis / n
+        axis = checks.nonzero_vector("normal", normal)
+        axis = axis / float(np.linalg.norm(axis))
         if axis @ view < 0:
             axis = -axis
     params["axis"] = axis.tolist()
-    params["degrees"] = _finite(degrees_per_pixel, "degrees_per_pixel") * dx
+    params["degrees"] = checks.number("degrees_per_pixel", degrees_per_pixel) * dx
     return params
 
 
 def scale(center, radius, start, current, *, per_pixel=0.005):
     """Scale: ``factor = exp(per_pixel * dy)``; dragging up grows, down shrinks."""
     params = _base("scale", center, radius)
-    dy = float(_pixel(current, "current")[1] - _pixel(start, "start")[1])
-    params["factor"] = math.exp(_finite(per_pixel, "per_pixel") * dy)
+    dy = float(checks.vector("current", current, length=2)[1] - checks.vector("start", start, length=2)[1])
+    params["factor"] = math.exp(checks.number("per_pixel", per_pixel) * dy)
     return params
 
 
@@ -126,13 +102,13 @@ def pinch(camera, center, radius, start, current, *, per_pixel=0.002, invert=Fal
     zero gradient.
     """
     params = _base("pinch", center, radius)
-    drag = _pixel(current, "current") - _pixel(start, "start")
+    drag = checks.vector("current", current, length=2) - checks.vector("start", start, length=2)
     length = float(np.hypot(*drag))
     gradient = np.zeros((3, 3))
     if length > 0:
         d = drag[0] * camera.right() + drag[1] * camera.up()
         d /= np.linalg.norm(d)
-        strength = _finite(per_pixel, "per_pixel") * length * (-1.0 if invert else 1.0)
+        strength = checks.number("per_pixel", per_pixel) * length * (-1.0 if invert else 1.0)
         gradient = strength * (np.outer(d, d) - np.eye(3) / 3)
     params["gradient"] = gradient.tolist()
     return params
@@ -151,7 +127,7 @@ def drag_params(kind, camera, center, radius, start, current, width, height, *, 
         return scale(center, radius, start, current)
     if kind == "pinch":
         return pinch(camera, center, radius, start, current, invert=invert)
-    raise ValueError(f"kind: must be one of {', '.join(KINDS)}, got {kind!r}")
+    raise checks.FieldError("kind", f"must be one of {', '.join(KINDS)}, got {kind!r}")
 
 
 def wheel_radius(radius, steps, *, step=1.1, min_radius=None, max_radius=None):
@@ -159,29 +135,29 @@ def wheel_radius(radius, steps, *, step=1.1, min_radius=None, max_radius=None):
 
     Positive steps (wheel up in pyglet's ``scroll_y``) grow the radius.
     """
-    r = _positive(radius, "radius") * _positive(step, "step") ** _finite(steps, "steps")
+    r = checks.positive("radius", radius) * checks.positive("step", step) ** checks.number("steps", steps)
     if min_radius is not None:
-        r = max(r, _positive(min_radius, "min_radius"))
+        r = max(r, checks.positive("min_radius", min_radius))
     if max_radius is not None:
-        r = min(r, _positive(max_radius, "max_radius"))
+        r = min(r, checks.positive("max_radius", max_radius))
     return r
 
 
 def _depth(camera, center):
-    depth = float((_vector3(center, "center") - camera.eye()) @ camera.view_axis())
+    depth = float((checks.vector("center", center) - camera.eye()) @ camera.view_axis())
     if depth <= 0:
-        raise ValueError("center: must lie in front of the camera")
+        raise checks.FieldError("center", "must lie in front of the camera")
     return depth
 
 
 def radius_from_pixels(camera, center, pixels, height):
     """World radius that covers ``pixels`` window units on screen at the depth of ``center``."""
-    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / _positive(height, "height")
-    return _positive(pixels, "pixels") * per_pixel
+    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / checks.positive("height", height)
+    return checks.positive("pixels", pixels) * per_pixel
 
 
 def pixels_from_radius(camera, center, radius, height):
     """Window units covered by the world length ``radius`` at the depth of ``center``
     (for drawing the brush outline); inverse of :func:`radius_from_pixels`."""
-    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / _positive(height, "height")
-    return _positive(radius, "radius") / per_pixel
+    per_pixel = 2.0 * _depth(camera, center) * math.tan(camera.fov_y / 2) / checks.positive("height", height)
+    return checks.positive("radius", radius) / per_pixel

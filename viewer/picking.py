@@ -34,6 +34,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from brushes import checks
+
 __all__ = ["Picker", "Hit", "morton_codes", "backend_name"]
 
 # Parallel rays are rejected when |det| < PARALLEL_TOL * |e1| |e2| (det = e1 . (d x e2), |d| = 1).
@@ -90,40 +92,18 @@ def backend_name():
 # -- validation ------------------------------------------------------------------------------
 def _check_vertices(vertices, n_vertices=None):
     """A C-contiguous float64 copy of ``vertices`` (the caller may change its array later)."""
-    v = np.array(vertices, dtype=np.float64, order="C", copy=True)
-    if v.ndim != 2 or v.shape[1] != 3:
-        raise ValueError(f"vertices: must have shape (n, 3), got {v.shape}")
-    if n_vertices is not None and len(v) != n_vertices:
-        raise ValueError(f"vertices: must have the {n_vertices} rows the picker was built with, got {len(v)}")
-    if not np.all(np.isfinite(v)):
-        raise ValueError("vertices: must be finite")
-    return v
+    v = checks.points("vertices", vertices, rows=n_vertices)
+    return np.array(v, dtype=np.float64, order="C", copy=True)
 
 
 def _check_faces(faces, n_vertices):
-    f = np.asarray(faces)
-    if f.ndim != 2 or f.shape[1] != 3:
-        raise ValueError(f"faces: must have shape (m, 3), got {f.shape}")
-    if len(f) == 0:
-        raise ValueError("faces: must hold at least one triangle")
-    if not np.issubdtype(f.dtype, np.integer):
-        raise ValueError(f"faces: must be integers, got {f.dtype}")
-    if f.min() < 0 or f.max() >= n_vertices:
-        raise ValueError(f"faces: indices must lie in [0, {n_vertices}), got [{f.min()}, {f.max()}]")
-    return np.ascontiguousarray(f, dtype=np.int64)
+    return checks.faces("faces", faces, n_vertices, allow_empty=False)
 
 
 def _check_ray(origin, direction):
-    o = np.asarray(origin, dtype=np.float64)
-    if o.shape != (3,) or not np.all(np.isfinite(o)):
-        raise ValueError(f"origin: must be a finite (3,) vector, got shape {o.shape}")
-    d = np.asarray(direction, dtype=np.float64)
-    if d.shape != (3,) or not np.all(np.isfinite(d)):
-        raise ValueError(f"direction: must be a finite (3,) vector, got shape {d.shape}")
-    n = float(np.linalg.norm(d))
-    if n == 0:
-        raise ValueError("direction: must not be zero")
-    d = d / n
+    o = checks.vector("origin", origin)
+    d = checks.nonzero_vector("direction", direction)
+    d = d / float(np.linalg.norm(d))
     small = np.abs(d) < TINY
     inv = 1.0 / np.where(small, np.copysign(TINY, d), d)
     return o, d, inv
@@ -148,7 +128,7 @@ def morton_codes(points):
     """
     p = np.asarray(points, dtype=np.float64)
     if p.ndim != 2 or p.shape[1] != 3:
-        raise ValueError(f"points: must have shape (n, 3), got {p.shape}")
+        raise checks.FieldError("points", f"must have shape (n, 3), got {p.shape}")
     lo = p.min(axis=0)
     extent = p.max(axis=0) - lo
     scale = np.where(extent > 0, (2**21 - 1) / np.where(extent > 0, extent, 1.0), 0.0)
@@ -374,13 +354,13 @@ class Picker:
     def __init__(self, vertices, faces, *, leaf_size=4, backend=None):
         leaf_size = int(leaf_size)
         if leaf_size < 1:
-            raise ValueError(f"leaf_size: must be >= 1, got {leaf_size}")
+            raise checks.FieldError("leaf_size", f"must be >= 1, got {leaf_size}")
         if backend not in (None, "numba", "numpy"):
-            raise ValueError(f"backend: must be 'numba', 'numpy' or None, got {backend!r}")
+            raise checks.FieldError("backend", f"must be 'numba', 'numpy' or None, got {backend!r}")
         if backend is None:
             backend = backend_name()
         if backend == "numba" and _numba_kernels() is None:
-            raise ValueError("backend: numba is not available (missing, or PLIANT_BACKEND=numpy)")
+            raise checks.FieldError("backend", "numba is not available (missing, or PLIANT_BACKEND=numpy)")
         self.backend = backend
         self.leaf_size = leaf_size
         v = _check_vertices(vertices)
@@ -425,7 +405,7 @@ class Picker:
         o, d, inv = _check_ray(origin, direction)
         t_max = float(max_distance)
         if not t_max > 0:
-            raise ValueError(f"max_distance: must be > 0, got {max_distance!r}")
+            raise checks.FieldError("max_distance", f"must be > 0, got {max_distance!r}")
         if self.backend == "numba":
             k, t, u, v = _numba_kernels()["pick"](
                 self.lo, self.hi, self.n_leaves, self.leaf_size, self.faces_sorted, self.vertices, o, d, inv, t_max

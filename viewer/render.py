@@ -2,9 +2,8 @@
 
 The pure half of this module (no OpenGL, importable without a display):
 
-* :func:`vertex_normals_operator` and :func:`vertex_normals`: area-weighted vertex normals as a
-  precomputed sparse vertex-face incidence matrix applied to the face cross products
-  (:func:`face_cross_products`, one fused numba pass when numba imports);
+* :class:`NormalField`: area-weighted vertex normals (the formulas of :mod:`brushes.surface`),
+  recomputed after a stroke only around the vertices that moved;
 * :func:`ring_points`: the brush outline, a camera-facing circle at the brush radius.
 
 The GL half (:class:`MeshRenderer`, :class:`MarkerRenderer`) needs a current OpenGL context,
@@ -17,16 +16,15 @@ Shaders are module-level strings; the palette is pasted in from :mod:`viewer.pal
 """
 
 import ctypes
-import functools
 
 import numpy as np
-import scipy.sparse
 
+from brushes import checks
 from viewer import palette
 from viewer.camera import as_gl
 
 __all__ = [
-    "vertex_normals_operator", "vertex_normals", "face_cross_products", "ring_points",
+    "NormalField", "ring_points",
     "MeshRenderer", "MarkerRenderer", "RenderError",
     "MESH_VERTEX_SHADER", "MESH_FRAGMENT_SHADER", "MARKER_VERTEX_SHADER", "MARKER_FRAGMENT_SHADER",
 ]
@@ -40,182 +38,63 @@ class RenderError(RuntimeError):
 # Pure part: normals, outline geometry, matrix layout.
 # --------------------------------------------------------------------------------------------
 
-def _check_faces(faces, n_vertices=None):
-    faces = np.asanyarray(faces)
-    if faces.ndim != 2 or faces.shape[1] != 3:
-        raise ValueError(f"faces: must have shape (m, 3), got {faces.shape}")
-    if faces.size and not np.issubdtype(faces.dtype, np.integer):
-        raise ValueError(f"faces: must hold integers, got dtype {faces.dtype}")
-    if n_vertices is not None and faces.size and (faces.min() < 0 or faces.max() >= n_vertices):
-        raise ValueError(f"faces: indices must lie in [0, {n_vertices}), "
-                         f"got [{faces.min()}, {faces.max()}]")
-    return faces
+class NormalField:
+    """Area-weighted vertex normals of one mesh, kept up to date as its vertices move.
 
-
-def vertex_normals_operator(faces, n_vertices):
-    """Sparse vertex-face incidence matrix that turns face cross products into vertex normals.
-
-    Row ``i`` has a 1 in column ``f`` for every face ``f`` that uses vertex ``i``. Applied to the
-    face cross products ``(b - a) x (c - a)`` (twice the face area times the unit face normal)
-    it gives area-weighted vertex normals before normalisation. It depends only on the
-    connectivity, so it is built once per mesh and reused for every frame of a drag.
+    The formulas are :mod:`brushes.surface`'s (``N_i = sum over faces f at i of
+    (b_f - a_f) x (c_f - a_f)``, left unnormalised: the mesh shader normalises per vertex).
+    The face cross products are cached, so after a stroke moves a set of vertices only the
+    faces that use them are recomputed, and only the normals of those faces' corners are summed
+    again (:meth:`update`): the work follows the moved region, not the mesh.
 
     Parameters
     ----------
     faces : (m, 3) int
-        Triangle vertex indices, counter-clockwise seen from outside.
     n_vertices : int
-        Number of vertices ``n``; every index in ``faces`` must be below it.
 
-    Returns
-    -------
-    scipy.sparse.csr_matrix, shape (n, m), float32
-    """
-    n_vertices = int(n_vertices)
-    if n_vertices < 0:
-        raise ValueError(f"n_vertices: must be >= 0, got {n_vertices}")
-    faces = _check_faces(faces, n_vertices)
-    m = len(faces)
-    rows = faces.reshape(-1).astype(np.int64)
-    cols = np.repeat(np.arange(m, dtype=np.int64), 3)
-    data = np.ones(3 * m, dtype=np.float32)
-    # A face that names the same vertex twice is degenerate and has a zero cross product, so
-    # the summed duplicate entry does no harm.
-    op = scipy.sparse.csr_matrix((data, (rows, cols)), shape=(n_vertices, m))
-    op.sum_duplicates()
-    op.sort_indices()
-    return op
-
-
-def _face_cross_numpy(vertices, faces, out):
-    """(b - a) x (c - a) per face with numpy; ``out`` (m, 3) of the vertices' dtype."""
-    # ndarray.take along axis 0 is several times faster than fancy indexing for (n, 3) rows.
-    a = vertices.take(faces[:, 0], axis=0)
-    e1 = vertices.take(faces[:, 1], axis=0)
-    e1 -= a
-    e2 = vertices.take(faces[:, 2], axis=0)
-    e2 -= a
-    tmp = np.empty(len(faces), dtype=vertices.dtype)
-    for i, (j, k) in enumerate(((1, 2), (2, 0), (0, 1))):
-        np.multiply(e1[:, j], e2[:, k], out=out[:, i])
-        np.multiply(e1[:, k], e2[:, j], out=tmp)
-        out[:, i] -= tmp
-    return out
-
-
-@functools.lru_cache(maxsize=1)
-def _face_cross_numba():
-    """The compiled face cross-product kernel, or None without numba or with
-    ``PLIANT_BACKEND=numpy`` (the switch the engine and picking use too)."""
-    from brushes.kernels import numba_module
-
-    numba = numba_module()
-    if numba is None:
-        return None
-
-    @numba.njit(cache=True, nogil=True)
-    def face_cross(vertices, faces, out):
-        for f in range(faces.shape[0]):
-            ia, ib, ic = faces[f, 0], faces[f, 1], faces[f, 2]
-            ax, ay, az = vertices[ia, 0], vertices[ia, 1], vertices[ia, 2]
-            ux, uy, uz = vertices[ib, 0] - ax, vertices[ib, 1] - ay, vertices[ib, 2] - az
-            vx, vy, vz = vertices[ic, 0] - ax, vertices[ic, 1] - ay, vertices[ic, 2] - az
-            out[f, 0] = uy * vz - uz * vy
-            out[f, 1] = uz * vx - ux * vz
-            out[f, 2] = ux * vy - uy * vx
-        return out
-
-    return face_cross
-
-
-def face_cross_products(vertices, faces, *, out=None, backend=None):
-    """Twice the area times the unit normal of each face: ``(b - a) x (c - a)``.
-
-    Parameters
+    Attributes
     ----------
-    vertices : (n, 3) float32 or float64
-    faces : (m, 3) int
-    out : (m, 3) array of the vertices' dtype, optional, keyword-only
-    backend : {"numba", "numpy", None}, keyword-only
-        None takes numba when it imports (one fused pass, no temporaries), else numpy.
-
-    Returns
-    -------
-    (m, 3) float32 or float64
+    normals : (n, 3) float32
+        Unnormalised area-weighted sums (zero for a vertex with no area around it).
     """
-    if backend not in (None, "numba", "numpy"):
-        raise ValueError(f"backend: must be 'numba', 'numpy' or None, got {backend!r}")
-    shape = (len(faces), 3)
-    if out is None:
-        out = np.empty(shape, dtype=vertices.dtype)
-    elif out.shape != shape or out.dtype != vertices.dtype:
-        raise ValueError(f"out: must be a {vertices.dtype} array of shape {shape}, "
-                         f"got {out.dtype} {out.shape}")
-    kernel = None if backend == "numpy" else _face_cross_numba()
-    if backend == "numba" and kernel is None:
-        raise ValueError("backend: numba is not available (missing, or PLIANT_BACKEND=numpy)")
-    if kernel is None:
-        return _face_cross_numpy(vertices, faces, out)
-    return kernel(vertices, faces, out)
 
+    def __init__(self, faces, n_vertices):
+        from brushes import surface
+        self.faces = checks.faces("faces", faces, int(n_vertices))
+        self.n_vertices = int(n_vertices)
+        self.operator = surface.vertex_normal_operator(self.faces, self.n_vertices)
+        self.cross = np.zeros((len(self.faces), 3), dtype=np.float32)
+        self.normals = np.zeros((self.n_vertices, 3), dtype=np.float32)
 
-def vertex_normals(op, vertices, faces, *, out=None, normalize=True, work=None, backend=None):
-    """Unit area-weighted vertex normals.
+    def full(self, vertices):
+        """Recompute every normal from (n, 3) positions; returns :attr:`normals`."""
+        from brushes import surface
+        v = _as_f32(vertices, (3,), "vertices")
+        if len(v) != self.n_vertices:
+            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(v)}")
+        self.cross[:] = surface.face_cross_products(v, self.faces)
+        self.normals[:] = self.operator @ self.cross
+        return self.normals
 
-    ``N_i = normalise( sum over faces f at i of (b_f - a_f) x (c_f - a_f) )``, the sum taken by
-    the sparse product ``op @ C`` (C from :func:`face_cross_products`). A vertex with no
-    faces, or whose faces cancel or are all degenerate, gets the zero vector (the shader
-    treats a zero normal as facing the viewer).
+    def update(self, vertices, moved):
+        """Recompute the normals around the vertices ``moved`` ((k,) int) only.
 
-    Parameters
-    ----------
-    op : scipy.sparse matrix, shape (n, m)
-        From :func:`vertex_normals_operator` for the same ``faces``.
-    vertices : (n, 3) float32 or float64
-        Positions. The work and the result use this dtype (float32 is about twice as fast).
-    faces : (m, 3) int
-        Triangles.
-    out : (n, 3) array of the same dtype, optional, keyword-only
-        Written in place and returned.
-    normalize : bool, keyword-only
-        False leaves the area-weighted sums unnormalised (the mesh shader normalises per
-        vertex on the GPU, which saves the CPU a pass over every vertex while dragging).
-    work : (m, 3) array of the same dtype, optional, keyword-only
-        Reused for the face cross products (saves an allocation per frame).
-    backend : {"numba", "numpy", None}, keyword-only
-        See :func:`face_cross_products`.
-
-    Returns
-    -------
-    (n, 3) float32 or float64
-    """
-    vertices = np.asanyarray(vertices)
-    if vertices.dtype not in (np.float32, np.float64):
-        vertices = vertices.astype(np.float64)
-    if vertices.ndim != 2 or vertices.shape[1] != 3:
-        raise ValueError(f"vertices: must have shape (n, 3), got {vertices.shape}")
-    faces = np.asanyarray(faces)
-    if faces.ndim != 2 or faces.shape[1] != 3:
-        raise ValueError(f"faces: must have shape (m, 3), got {faces.shape}")
-    if op.shape != (len(vertices), len(faces)):
-        raise ValueError(f"op: must have shape ({len(vertices)}, {len(faces)}) for these "
-                         f"vertices and faces, got {op.shape}")
-    cross = face_cross_products(vertices, faces, out=work, backend=backend)
-    summed = np.asarray(op @ cross, dtype=vertices.dtype)
-    if out is None:
-        out = summed
-    elif out.shape != summed.shape or out.dtype != summed.dtype:
-        raise ValueError(f"out: must be a {summed.dtype} array of shape {summed.shape}, "
-                         f"got {out.dtype} {out.shape}")
-    if not normalize:
-        if out is not summed:
-            out[...] = summed
-        return out
-    length = np.sqrt(np.einsum("ij,ij->i", summed, summed))
-    scale = np.zeros_like(length)
-    np.divide(1.0, length, out=scale, where=length > 0)
-    np.multiply(summed, scale[:, None], out=out)
-    return out
+        Returns the (j,) int64 indices of the vertices whose normals were rewritten (the
+        corners of every face that uses a moved vertex).
+        """
+        from brushes import surface
+        v = _as_f32(vertices, (3,), "vertices")
+        if len(v) != self.n_vertices:
+            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(v)}")
+        moved = np.asarray(moved, dtype=np.int64).reshape(-1)
+        if moved.size == 0:
+            return moved
+        op = self.operator
+        touched = np.unique(op[moved].indices)  # faces that use a moved vertex
+        self.cross[touched] = surface.face_cross_products(v, self.faces[touched])
+        corners = np.unique(self.faces[touched])
+        self.normals[corners] = op[corners] @ self.cross
+        return corners
 
 
 def ring_points(center, radius, right, up, *, segments=64):
@@ -237,18 +116,12 @@ def ring_points(center, radius, right, up, *, segments=64):
     (segments, 3) float32
         Closed loop (draw as a line loop).
     """
-    center = np.asarray(center, dtype=np.float64)
-    if center.shape != (3,):
-        raise ValueError(f"center: must have shape (3,), got {center.shape}")
-    right = np.asarray(right, dtype=np.float64)
-    up = np.asarray(up, dtype=np.float64)
-    if right.shape != (3,) or up.shape != (3,):
-        raise ValueError(f"right/up: must have shape (3,), got {right.shape} and {up.shape}")
-    radius = float(radius)
-    if not radius > 0:
-        raise ValueError(f"radius: must be > 0, got {radius}")
+    center = checks.vector("center", center)
+    right = checks.vector("right", right)
+    up = checks.vector("up", up)
+    radius = checks.positive("radius", radius)
     if int(segments) < 3:
-        raise ValueError(f"segments: must be >= 3, got {segments}")
+        raise checks.FieldError("segments", f"must be >= 3, got {segments}")
     angle = np.linspace(0.0, 2.0 * np.pi, int(segments), endpoint=False)
     pts = center + radius * (np.cos(angle)[:, None] * right + np.sin(angle)[:, None] * up)
     return pts.astype(np.float32)
@@ -374,7 +247,7 @@ def _as_f32(array, shape_tail, name):
     array = np.asarray(array)
     if array.ndim != 1 + len(shape_tail) or tuple(array.shape[1:]) != shape_tail:
         want = "(n" + "".join(f", {k}" for k in shape_tail) + ")"
-        raise ValueError(f"{name}: must have shape {want}, got {array.shape}")
+        raise checks.FieldError(name, f"must have shape {want}, got {array.shape}")
     return np.ascontiguousarray(array, dtype=np.float32)
 
 
@@ -401,12 +274,10 @@ class MeshRenderer:
         from pyglet.graphics.vertexbuffer import BufferObject
 
         vertices = _as_f32(vertices, (3,), "vertices")
-        faces = _check_faces(faces, len(vertices))
+        self.field = NormalField(faces, len(vertices))
+        self.faces = self.field.faces
         self.n_vertices = len(vertices)
-        self.n_faces = len(faces)
-        # Column-major, so each corner column is contiguous for the gathers in vertex_normals.
-        self.faces = np.asfortranarray(faces, dtype=np.int64)
-        self.normal_operator = vertex_normals_operator(self.faces, self.n_vertices)
+        self.n_faces = len(self.faces)
         self.program = _program(MESH_VERTEX_SHADER,
                                 MESH_FRAGMENT_SHADER % {"palette": palette.glsl_constants()})
         n = max(self.n_vertices, 1)
@@ -429,8 +300,6 @@ class MeshRenderer:
         self.show_magnitude = False
         self.magnitude_scale = 1.0
         self.hold_strength = 0.65
-        self.normals = np.zeros((self.n_vertices, 3), dtype=np.float32)
-        self._face_work = np.empty((self.n_faces, 3), dtype=np.float32)
         self.set_positions(vertices)
         self.set_magnitude(None)
         self.set_hold(None)
@@ -440,7 +309,12 @@ class MeshRenderer:
         if array.nbytes:
             buffer.set_data_region(ctypes.c_void_p(array.ctypes.data), 0, array.nbytes)
 
-    def set_positions(self, vertices, *, normals=None):
+    @property
+    def normals(self):
+        """(n, 3) float32 unnormalised vertex normals last uploaded."""
+        return self.field.normals
+
+    def set_positions(self, vertices, *, normals=None, moved=None):
         """Replace positions (and normals) in place.
 
         Parameters
@@ -448,19 +322,23 @@ class MeshRenderer:
         vertices : (n, 3) float
             New positions, same n as at construction.
         normals : (n, 3) float, optional, keyword-only
-            Precomputed normals (any positive length); computed with :func:`vertex_normals`
-            when omitted.
+            Precomputed normals (any positive length).
+        moved : (k,) int, optional, keyword-only
+            The vertices that moved since the last call: only the normals around them are
+            recomputed (:meth:`NormalField.update`). Without it (and without ``normals``)
+            every normal is recomputed.
         """
         vertices = _as_f32(vertices, (3,), "vertices")
         if len(vertices) != self.n_vertices:
-            raise ValueError(f"vertices: must have {self.n_vertices} rows, got {len(vertices)}")
-        if normals is None:
-            vertex_normals(self.normal_operator, vertices, self.faces, out=self.normals,
-                           normalize=False, work=self._face_work)
+            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(vertices)}")
+        if normals is not None:
+            self.field.normals[:] = _as_f32(normals, (3,), "normals")
+        elif moved is not None:
+            self.field.update(vertices, moved)
         else:
-            self.normals[:] = _as_f32(normals, (3,), "normals")
+            self.field.full(vertices)
         self._upload(self._positions, vertices)
-        self._upload(self._normals, self.normals)
+        self._upload(self._normals, self.field.normals)
 
     def set_magnitude(self, values, *, scale=None):
         """Per-vertex displacement magnitude for the overlay ramp (``None`` clears it).
@@ -475,7 +353,7 @@ class MeshRenderer:
             values = np.zeros(self.n_vertices, dtype=np.float32)
         values = _as_f32(values, (), "values")
         if len(values) != self.n_vertices:
-            raise ValueError(f"values: must have {self.n_vertices} entries, got {len(values)}")
+            raise checks.FieldError("values", f"must have {self.n_vertices} entries, got {len(values)}")
         top = float(values.max()) if scale is None and len(values) else (scale or 0.0)
         self.magnitude_scale = 1.0 / top if top > 0 else 0.0
         self._upload(self._magnitude, values)
@@ -491,7 +369,7 @@ class MeshRenderer:
             weights = np.zeros(self.n_vertices, dtype=np.float32)
         weights = _as_f32(weights, (), "weights")
         if len(weights) != self.n_vertices:
-            raise ValueError(f"weights: must have {self.n_vertices} entries, got {len(weights)}")
+            raise checks.FieldError("weights", f"must have {self.n_vertices} entries, got {len(weights)}")
         self._upload(self._hold, weights)
 
     def draw(self, view, projection):

@@ -52,6 +52,8 @@ import sys
 
 import numpy as np
 
+from brushes import checks
+
 from viewer import palette
 
 __all__ = ["snapshot", "render_pixels", "camera_for", "parse_view", "parse_size",
@@ -151,7 +153,7 @@ def parse_size(text):
             raise ValueError
         size = (int(parts[0]), int(parts[1]))
     except ValueError:
-        raise ValueError(f"size: expected WIDTHxHEIGHT such as 800x600, got {text!r}") from None
+        raise checks.FieldError("size", f"expected WIDTHxHEIGHT such as 800x600, got {text!r}") from None
     return _check_size(size)
 
 
@@ -159,9 +161,9 @@ def _check_size(size):
     try:
         width, height = (int(v) for v in size)
     except (TypeError, ValueError):
-        raise ValueError(f"size: must be (width, height), got {size!r}") from None
+        raise checks.FieldError("size", f"must be (width, height), got {size!r}") from None
     if not (1 <= width <= _MAX_SIDE and 1 <= height <= _MAX_SIDE):
-        raise ValueError(f"size: each side must lie in [1, {_MAX_SIDE}], got {width}x{height}")
+        raise checks.FieldError("size", f"each side must lie in [1, {_MAX_SIDE}], got {width}x{height}")
     return width, height
 
 
@@ -185,7 +187,7 @@ def camera_for(vertices, size, view, *, bounds=None):
     else:
         bounds = np.asarray(bounds, dtype=np.float64)
         if bounds.shape != (2, 3):
-            raise ValueError(f"bounds: must have shape (2, 3), got {bounds.shape}")
+            raise checks.FieldError("bounds", f"must have shape (2, 3), got {bounds.shape}")
         lo, hi = bounds
     camera = OrbitCamera(yaw=math.radians(view["yaw"]), pitch=math.radians(view["pitch"]),
                          fov_y=math.radians(view["fov"]))
@@ -239,19 +241,15 @@ def render_pixels(vertices, faces, *, size=(800, 600), view=None, bounds=None, m
     (height, width, 3) uint8
         RGB, first row at the top.
     """
-    vertices = np.asanyarray(vertices, dtype=np.float64)
-    if vertices.ndim != 2 or vertices.shape[1] != 3 or len(vertices) == 0:
-        raise ValueError(f"vertices: must have shape (n, 3) with n > 0, got {vertices.shape}")
-    if not np.all(np.isfinite(vertices)):
-        raise ValueError("vertices: must be finite")
-    faces = np.asanyarray(faces)
-    if faces.ndim != 2 or faces.shape[1] != 3:
-        raise ValueError(f"faces: must have shape (m, 3), got {faces.shape}")
+    vertices = checks.points("vertices", vertices)
+    if len(vertices) == 0:
+        raise checks.FieldError("vertices", "must hold at least one vertex, got shape (0, 3)")
+    faces = checks.faces("faces", faces, len(vertices))
     width, height = _check_size(size)
     view = parse_view(view)
     samples = int(samples)
     if samples < 1:
-        raise ValueError(f"samples: must be >= 1, got {samples}")
+        raise checks.FieldError("samples", f"must be >= 1, got {samples}")
     camera = camera_for(vertices, (width, height), view, bounds=bounds)
 
     window = ensure_gl_context()
@@ -354,7 +352,7 @@ def snapshot(vertices, faces, path, *, size=(800, 600), view=None, bounds=None, 
     """
     path = os.fspath(path)
     if not path.lower().endswith(".png"):
-        raise ValueError(f"path: must end in .png, got {path!r}")
+        raise checks.FieldError("path", f"must end in .png, got {path!r}")
     pixels = render_pixels(vertices, faces, size=size, view=view, bounds=bounds,
                            magnitude=magnitude)
     from PIL import Image
