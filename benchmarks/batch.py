@@ -69,7 +69,7 @@ def bench_batch(copies: int = 200, jobs=(1, 2), *, interval: float = 0.25) -> di
     import psutil
 
     from brushes.demo import find_models
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
 
     if copies < 1:
         raise ValueError(f"copies: must be at least 1, got {copies}")

@@ -56,7 +56,7 @@ def bench_obj(n_vertices: int = 1_000_000) -> dict:
     """
     import trimesh
 
-    from brushes.meshio import load_mesh, save_mesh
+    from brushes.formats import load_mesh, save_mesh
 
     n_vertices = int(n_vertices)
     if n_vertices < 4:

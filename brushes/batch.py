@@ -124,7 +124,7 @@ def pose_file(recipe, source: str, target: str) -> Outcome:
     """
     start = time.perf_counter()
     try:
-        from brushes.meshio import load_mesh, save_mesh
+        from brushes.formats import load_mesh, save_mesh
         from brushes.recipe import load_recipe
 
         if isinstance(recipe, (str, os.PathLike)):
@@ -169,7 +169,7 @@ def _pool_context():
 
     if "forkserver" in multiprocessing.get_all_start_methods():
         ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["brushes.batch", "brushes.meshio", "brushes.recipe"])
+        ctx.set_forkserver_preload(["brushes.batch", "brushes.formats", "brushes.recipe"])
         return ctx
     return multiprocessing.get_context("spawn")
 

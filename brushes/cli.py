@@ -268,7 +268,7 @@ DELTA_FORMATS = ("npz", "glb", "gltf")
 
 
 def _mesh_formats() -> tuple[str, ...]:
-    from brushes.meshio import FORMATS
+    from brushes.formats import FORMATS
 
     return tuple(FORMATS)
 
@@ -301,7 +301,7 @@ def _groups(doc):
 # --------------------------------------------------------------------------- commands
 
 def cmd_apply(args) -> int:
-    from brushes.meshio import load_mesh, save_mesh
+    from brushes.formats import load_mesh, save_mesh
     from brushes.recipe import load_recipe
 
     _existing(args.recipe, "RECIPE")
@@ -318,7 +318,7 @@ def cmd_apply(args) -> int:
     if doc.format is not None and target_format != doc.format:
         # Another format cannot carry the source's structure: keep positions, faces and
         # per-vertex texture coordinates.
-        from brushes.meshio import MeshDoc
+        from brushes.formats import MeshDoc
 
         save_mesh(MeshDoc.from_arrays(posed, doc.faces, uv=doc.uv), args.out)
         print(f"posed: {args.out} (converted from {doc.format.upper()}: positions, faces "
@@ -379,7 +379,7 @@ def cmd_batch(args) -> int:
 
 def cmd_delta(args) -> int:
     from brushes.correctives import write_delta
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
 
     _existing(args.rest, "REST")
     _existing(args.posed, "POSED")
@@ -395,7 +395,7 @@ def cmd_delta(args) -> int:
 
 def cmd_report(args) -> int:
     from brushes import quality
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
 
     _existing(args.rest, "REST")
     _existing(args.posed, "POSED")
@@ -461,7 +461,7 @@ def cmd_view(args) -> int:
 
 
 def cmd_snapshot(args) -> int:
-    from brushes.meshio import load_mesh
+    from brushes.formats import load_mesh
 
     _existing(args.mesh, "MESH")
     inputs = [args.mesh]

@@ -37,8 +37,9 @@ import struct
 
 import numpy as np
 
+from . import checks
 from .atomic import atomic_write
-from .meshio import MeshDoc
+from .formats import MeshDoc
 
 __all__ = ["write_delta", "apply_delta", "rest_checksum", "FORMAT_TAG", "FORMAT_VERSION"]
 
@@ -53,19 +54,8 @@ def rest_checksum(rest_vertices) -> str:
     ----------
     rest_vertices : (n, 3) float
     """
-    v = _positions(rest_vertices, "rest_vertices")
+    v = checks.points("rest_vertices", rest_vertices)
     return hashlib.sha256(np.ascontiguousarray(v, dtype="<f8").tobytes()).hexdigest()
-
-
-def _positions(a, name, n=None):
-    v = np.asarray(a, dtype=np.float64)
-    if v.ndim != 2 or v.shape[1] != 3:
-        raise ValueError(f"{name}: must have shape (n, 3), got {v.shape}")
-    if n is not None and len(v) != n:
-        raise ValueError(f"{name}: has {len(v)} vertices but the rest mesh has {n}")
-    if not np.all(np.isfinite(v)):
-        raise ValueError(f"{name}: must be finite (found NaN or infinity)")
-    return v
 
 
 def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective",
@@ -91,14 +81,12 @@ def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective"
         Vertex counts differ, positions are not finite, or the extension is unknown.
     """
     if not isinstance(rest, MeshDoc):
-        raise ValueError(f"rest: must be a MeshDoc, got {type(rest).__name__}")
-    r = _positions(rest.vertices, "rest")
-    p = _positions(posed_vertices, "posed_vertices", len(r))
+        raise checks.FieldError("rest", f"must be a MeshDoc, got {type(rest).__name__}")
+    r = checks.points("rest", rest.vertices)
+    p = checks.points("posed_vertices", posed_vertices, rows=len(r))
     if not isinstance(name, str) or not name:
-        raise ValueError("name: must be a non-empty string")
-    weight = float(weight)
-    if not np.isfinite(weight):
-        raise ValueError("weight: must be finite")
+        raise checks.FieldError("name", f"must be a non-empty string, got {name!r}")
+    weight = checks.number("weight", weight)
     ext = os.path.splitext(os.fspath(path))[1].lower()
     deltas = (p - r).astype(np.float32)
     if ext == ".npz":
@@ -116,7 +104,7 @@ def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective"
     elif ext in (".glb", ".gltf"):
         data = _gltf_bytes(r, rest.faces, rest.uv, deltas, name, weight, glb=ext == ".glb")
     else:
-        raise ValueError(f"path: extension must be .npz, .glb or .gltf, got {ext or 'none'!r}")
+        raise checks.FieldError("path", f"extension must be .npz, .glb or .gltf, got {ext or 'none'!r}")
     with atomic_write(path) as f:
         f.write(data)
 
@@ -140,30 +128,30 @@ def apply_delta(rest_vertices, path) -> np.ndarray:
     ValueError
         Not a pliant corrective file, or a different vertex count or checksum.
     """
-    r = _positions(rest_vertices, "rest_vertices")
+    r = checks.points("rest_vertices", rest_vertices)
     try:
         with np.load(path, allow_pickle=False) as z:
             fields = {k: z[k] for k in z.files}
     except FileNotFoundError:
-        raise ValueError(f"path: {path}: no such file") from None
+        raise checks.FieldError("path", f"{path}: no such file") from None
     except (OSError, ValueError, EOFError) as exc:
-        raise ValueError(f"path: {path}: not a corrective .npz file ({exc})") from None
+        raise checks.FieldError("path", f"{path}: not a corrective .npz file ({exc})") from None
     if str(fields.get("format", "")) != FORMAT_TAG:
-        raise ValueError(f"path: {path}: not a pliant corrective file (format tag missing)")
+        raise checks.FieldError("path", f"{path}: not a pliant corrective file (format tag missing)")
     version = int(fields.get("version", -1))
     if version != FORMAT_VERSION:
-        raise ValueError(f"path: {path}: corrective format version {version} is not supported")
+        raise checks.FieldError("path", f"{path}: corrective format version {version} is not supported")
     count = int(fields["count"])
     deltas = np.asarray(fields["deltas"])
     if deltas.shape != (count, 3):
-        raise ValueError(f"path: {path}: deltas have shape {deltas.shape}, expected ({count}, 3)")
+        raise checks.FieldError("path", f"{path}: deltas have shape {deltas.shape}, expected ({count}, 3)")
     if len(r) != count:
-        raise ValueError(
-            f"rest_vertices: has {len(r)} vertices but {path} was made for {count}"
+        raise checks.FieldError(
+            "rest_vertices", f"has {len(r)} vertices but {path} was made for {count}"
         )
     if rest_checksum(r) != str(fields["checksum"]):
-        raise ValueError(
-            f"rest_vertices: checksum differs from the rest mesh {path} was made from "
+        raise checks.FieldError(
+            "rest_vertices", f"checksum differs from the rest mesh {path} was made from "
             "(different positions or vertex order)"
         )
     return r + deltas.astype(np.float64)

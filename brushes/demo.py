@@ -70,7 +70,7 @@ def run_demo(out_dir: str | os.PathLike = "pliant-demo", *, models: list[Path] |
     from brushes import quality
     from brushes.atomic import atomic_write
     from brushes.correctives import write_delta
-    from brushes.meshio import load_mesh, save_mesh
+    from brushes.formats import load_mesh, save_mesh
     from brushes.recipe import load_recipe
 
     mesh_path, recipe_path = find_models(models)

@@ -13,6 +13,8 @@ import math
 
 import numpy as np
 
+from brushes import surface
+
 __all__ = ["quality", "format_quality"]
 
 # Relative thresholds. A vertex "moved" if its displacement exceeds MOVED_TOL times the rest
@@ -135,23 +137,6 @@ def _edges(faces, n):
     return edges, boundary, nonmanifold, closed
 
 
-def _signed_volume(points, faces, normals):
-    """Signed volume enclosed by a closed triangle mesh, by the divergence theorem.
-
-    V = (1/6) sum_f p0 . ((p1 - p0) x (p2 - p0)), the sum of signed tetrahedra from an origin
-    to each face; the origin is moved to the bounding-box centre first to limit cancellation.
-    normals : (m, 3) float64, the unnormalised face normals (p1 - p0) x (p2 - p0).
-    """
-    centre = 0.5 * (points.min(axis=0) + points.max(axis=0))
-    p0 = points[faces[:, 0]] - centre
-    return float(np.einsum("ij,ij->", p0, normals) / 6.0)
-
-
-def _normals(points, faces):
-    p0 = points[faces[:, 0]]
-    return np.cross(points[faces[:, 1]] - p0, points[faces[:, 2]] - p0)
-
-
 def _ratio_range(num, den, keep):
     """Min and max of num/den over entries where keep is True, as floats, or (None, None)."""
     if not keep.any():
@@ -241,8 +226,8 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
     edges, boundary, nonmanifold, closed = _edges(faces, n)
 
     # faces: normals, areas, flips, volume
-    n_rest = _normals(rest, faces)
-    n_posed = _normals(posed, faces)
+    n_rest = surface.face_cross_products(rest, faces)
+    n_posed = surface.face_cross_products(posed, faces)
     area_rest = 0.5 * np.linalg.norm(n_rest, axis=1)
     area_posed = 0.5 * np.linalg.norm(n_posed, axis=1)
     flipped = int(np.count_nonzero(np.einsum("ij,ij->i", n_rest, n_posed) < 0.0))
@@ -253,8 +238,8 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
 
     volume_rest = volume_posed = volume_change = None
     if closed:
-        volume_rest = _signed_volume(rest, faces, n_rest)
-        volume_posed = _signed_volume(posed, faces, n_posed)
+        volume_rest = surface.signed_volume(rest, faces)
+        volume_posed = surface.signed_volume(posed, faces)
         if abs(volume_rest) > VOLUME_ZERO_TOL * diagonal**3:
             volume_change = (volume_posed - volume_rest) / volume_rest
 

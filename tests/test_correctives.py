@@ -13,7 +13,7 @@ import pytest
 import trimesh
 
 from brushes.correctives import FORMAT_TAG, apply_delta, write_delta
-from brushes.meshio import MeshDoc
+from brushes.formats import MeshDoc
 
 REPO = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 
