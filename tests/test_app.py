@@ -284,3 +284,128 @@ def test_bindings_markdown_lists_every_binding():
     plain = table.replace("\\<", "<").replace("\\>", ">")
     for key, _, description in BINDINGS:
         assert f"| `{key}` | {description} |" in plain
+
+
+def test_run_as_the_command_does_survives_garbage_collection(ball):
+    # `pliant view` calls viewer.app.run(), which must keep its window and handlers alive:
+    # pyglet 2.1 holds both weakly (pyglet.app.windows is a WeakSet, pushed handlers are weak
+    # methods). The probe runs inside run()'s event loop after a forced collection.
+    out = _run(f"""
+        import gc
+        from viewer import app, palette
+        result = {{}}
+
+        def pixels(window):
+            window.switch_to()
+            window.dispatch_event("on_draw")
+            data = pyglet.image.get_buffer_manager().get_color_buffer().get_image_data()
+            rgba = np.frombuffer(data.get_data("RGBA", data.width * 4), np.uint8)
+            return rgba.reshape(data.height, data.width, 4)[..., :3].astype(int)
+
+        def probe(dt):
+            gc.collect()
+            windows = list(pyglet.app.windows)
+            result["windows"] = len(windows)
+            if windows:
+                window = windows[0]
+                bg = np.round(np.array(palette.BACKGROUND) * 255)
+                plain = pixels(window)
+                result["model"] = float((np.abs(plain - bg).max(axis=2) > 3).mean())
+                window.dispatch_event("on_key_press", key.F1, 0)     # the help panel
+                result["help"] = float((np.abs(pixels(window) - plain).max(axis=2) > 10).mean())
+                window.dispatch_event("on_key_press", key.Q, key.MOD_CTRL)
+                result["closed"] = bool(window.has_exit)
+            if not result.get("closed"):
+                pyglet.app.exit()   # the handlers are gone: stop the loop so the test can fail
+
+        pyglet.clock.schedule_once(probe, 0.0)
+        result["returned"] = app.run({str(ball)!r})
+        print(json.dumps(result))
+    """)
+    result = json.loads(out.strip().splitlines()[-1])
+    assert result["windows"] == 1            # the window outlived the collection
+    assert result["model"] > 0.05            # a frame with the model in it was drawn
+    assert result["help"] > 0.05             # F1 was handled: the help panel appeared
+    assert result["closed"] is True and result["returned"] == 0  # Ctrl+Q closed it; run() returned
+
+
+def _relative_luminance(rgb):
+    """WCAG 2.1 relative luminance of 8-bit sRGB (written out here from the W3C definition)."""
+    c = np.asarray(rgb, dtype=np.float64) / 255.0
+    linear = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+    return linear @ np.array([0.2126, 0.7152, 0.0722])
+
+
+def _contrast(a, b):
+    hi, lo = sorted((_relative_luminance(a), _relative_luminance(b)), reverse=True)
+    return (hi + 0.05) / (lo + 0.05)
+
+
+def test_what_the_user_sees_pins_legend_turned_faces(tmp_path):
+    # One picture after a first use: two pins, a saturated hold, a long grab beside it that
+    # turns faces over, F2 on. Checked on the pixels, as a user would look at them.
+    path = tmp_path / "ball4.obj"
+    trimesh.creation.icosphere(subdivisions=4).export(path)
+    out = _run(f"""
+        from viewer import palette
+        from viewer.app import PIN_PIXELS
+        W, H = 640, 480
+        viewer = open_viewer({str(path)!r}, size=(W, H), visible=False)
+        s = viewer.session
+        send(viewer, "on_key_press", key._6, 0)
+        for _ in range(4):
+            send(viewer, "on_mouse_press", W / 2, H / 2, mouse.LEFT, 0)
+            send(viewer, "on_mouse_release", W / 2, H / 2, mouse.LEFT, 0)
+        send(viewer, "on_key_press", key._5, 0)
+        pin_at = (W / 2 - 60, H / 2 - 70)
+        send(viewer, "on_mouse_press", *pin_at, mouse.LEFT, 0)
+        send(viewer, "on_mouse_release", *pin_at, mouse.LEFT, 0)
+        send(viewer, "on_key_press", key._1, 0)
+        drag(viewer, (W / 2 + 40, H / 2), (W / 2 + 190, H / 2))
+        send(viewer, "on_mouse_motion", 5, 5, 0, 0)           # cursor off the model: no ring
+        send(viewer, "on_key_press", key.F2, 0)
+        image = frame(viewer)
+        pin = s.camera.project(s.pins[0], W, H)
+        x, y, w, h = viewer.legend_box()
+        print(json.dumps({{"flipped": s.status()["flipped"], "pin": pin.tolist(),
+                          "legend": [x, y, w, h], "pin_pixels": PIN_PIXELS,
+                          "message": s.message, "status": viewer.status.text}}))
+        np.save({str(tmp_path / "frame.npy")!r}, image)
+    """)
+    state = json.loads(out.strip().splitlines()[-1])
+    image = np.load(tmp_path / "frame.npy").astype(int)
+    height = image.shape[0]
+    from viewer import palette
+    bg = np.round(np.array(palette.BACKGROUND) * 255)
+
+    # Turned faces: counted in the status line and tinted violet (blue and red above green).
+    assert state["flipped"] > 0 and f"flipped faces {state['flipped']:,}" in state["status"]
+    assert "by the mask" in state["message"]
+    r, g, b = image[..., 0], image[..., 1], image[..., 2]
+    violet = (b > g + 40) & (r > g + 20)
+    assert violet.sum() > 30
+
+    # Pins: a brass disc with a dark rim, at least PIN_PIXELS across where the pin projects.
+    px, py = state["pin"][0], height - state["pin"][1]   # window y is up, image rows go down
+    patch = image[int(py) - 12:int(py) + 13, int(px) - 12:int(px) + 13]
+    brass = np.round(np.array(palette.PIN) * 255)
+    disc = (np.abs(patch - brass).max(axis=2) < 40).sum()
+    assert disc >= 0.6 * np.pi * (state["pin_pixels"] / 2) ** 2
+    rim = (patch.max(axis=2) < 40).sum()
+    assert rim > 20
+
+    # Legend: the bar runs from the ramp's unmoved colour to its hottest colour.
+    x, y, w, h = state["legend"]
+    row = int(height - (y + h / 2))
+    first = image[row, int(x) + 2]
+    last = image[row, int(x + w) - 3]
+    np.testing.assert_allclose(first, np.array(palette.RAMP[0][1]) * 255, atol=6)
+    np.testing.assert_allclose(last, np.array(palette.RAMP[-1][1]) * 255, atol=6)
+
+    # Unmoved, unheld surface in the F2 colours stands off the ground: WCAG 2.1 contrast
+    # ratio (W3C formula, written out above) of the median model pixel far from the stroke
+    # against the background is at least 3, the W3C minimum for graphics.
+    left_half = image[:, : image.shape[1] // 2 - 80]
+    model = left_half[np.abs(left_half - bg).max(axis=2) > 10]
+    assert len(model) > 200
+    assert _contrast(np.median(model, axis=0), bg) >= 3.0

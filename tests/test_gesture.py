@@ -47,24 +47,28 @@ def test_grabbed_point_stays_under_the_cursor():
 
 def test_twist_hand_checked():
     cam = front_camera()
-    p = gesture.twist(cam, [0, 0, 0], 1.0, (400, 300), (490, 250))
-    # 90 px right at 0.5 degree per pixel; the axis is the view axis (0, 0, -1).
-    assert p["degrees"] == pytest.approx(45.0)
+    p = gesture.twist(cam, [0, 0, 0], 1.0, (400, 300), (490, 250), 800)
+    # 90 px right in an 800-wide window at 180 degrees per window width: 20.25 degrees (by
+    # hand); the axis is the view axis (0, 0, -1).
+    assert p["degrees"] == pytest.approx(20.25)
     np.testing.assert_allclose(p["axis"], [0, 0, -1])
     # Right-hand rule (scipy's rotation vectors): turning +X by +90 degrees about -Z gives -Y,
     # i.e. from screen right to screen down: clockwise on screen for a rightward drag.
     turned = Rotation.from_rotvec(np.radians(90) * np.array(p["axis"])).apply([1, 0, 0])
     np.testing.assert_allclose(turned, [0, -1, 0], atol=1e-12)
-    left = gesture.twist(cam, [0, 0, 0], 1.0, (400, 300), (380, 300), degrees_per_pixel=1.0)
+    left = gesture.twist(cam, [0, 0, 0], 1.0, (400, 300), (380, 300), 800, degrees_per_width=800)
     assert left["degrees"] == pytest.approx(-20.0)
+    # The same share of a wider window turns the same angle.
+    wide = gesture.twist(cam, [0, 0, 0], 1.0, (800, 300), (980, 250), 1600)
+    assert wide["degrees"] == pytest.approx(p["degrees"])
 
 
 def test_twist_about_the_normal_points_into_the_screen():
     cam = front_camera()
     # A normal facing the viewer (+Z) is turned to point into the screen (-Z).
-    p = gesture.twist(cam, [0, 0, 0], 1.0, (0, 0), (10, 0), normal=[0, 1.2, 1.6])
+    p = gesture.twist(cam, [0, 0, 0], 1.0, (0, 0), (10, 0), 800, normal=[0, 1.2, 1.6])
     np.testing.assert_allclose(p["axis"], [0, -0.6, -0.8])
-    p = gesture.twist(cam, [0, 0, 0], 1.0, (0, 0), (10, 0), normal=[1, 0, -1])
+    p = gesture.twist(cam, [0, 0, 0], 1.0, (0, 0), (10, 0), 800, normal=[1, 0, -1])
     np.testing.assert_allclose(p["axis"], [math.sqrt(0.5), 0, -math.sqrt(0.5)])
 
 
@@ -128,9 +132,9 @@ def test_bad_input():
     with pytest.raises(ValueError, match="center"):
         gesture.scale([0, 0], 1, (0, 0), (1, 1))
     with pytest.raises(ValueError, match="current"):
-        gesture.twist(cam, [0, 0, 0], 1, (0, 0), (1, np.nan))
+        gesture.twist(cam, [0, 0, 0], 1, (0, 0), (1, np.nan), 800)
     with pytest.raises(ValueError, match="normal"):
-        gesture.twist(cam, [0, 0, 0], 1, (0, 0), (1, 1), normal=[0, 0, 0])
+        gesture.twist(cam, [0, 0, 0], 1, (0, 0), (1, 1), 800, normal=[0, 0, 0])
     with pytest.raises(ValueError, match="center"):
         gesture.radius_from_pixels(cam, [0, 0, 9], 10, H)  # behind the eye
     with pytest.raises(ValueError, match="steps"):

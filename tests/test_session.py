@@ -411,3 +411,189 @@ def test_grab_preview_backends_agree_with_the_plain_formula():
         grab_preview(response, [1, 2], base_sorted, order, 1, 0, np.zeros((n, 3)))
     if len(backends) == 1:
         pytest.skip("numba is not importable here, so only the numpy backend was checked")
+
+
+# ---------------------------------------------------------------------------- first-use fixes
+
+class FakeClock:
+    """A clock the test moves by hand (no waiting)."""
+
+    def __init__(self):
+        self.now = 100.0
+
+    def __call__(self):
+        return self.now
+
+
+def _click(session, x, y, modifiers=0):
+    session.press(x, y, LEFT, modifiers)
+    session.release(x, y, LEFT, modifiers)
+
+
+def test_turned_faces_are_counted_flagged_and_blamed_on_the_mask(sphere, tmp_path):
+    # A saturated hold in the middle of the view and a long grab beside it: the masked blend
+    # x + w (phi(x) - x) turns faces over where w changes. Reference for the count: trimesh's
+    # face normals of the rest and committed meshes (dot < 0: turned more than 90 degrees).
+    mesh = trimesh.creation.icosphere(subdivisions=4)
+    session = Session(mesh.vertices, mesh.faces, size=(W, H), out_dir=tmp_path)
+    session.key("_6")
+    for _ in range(4):
+        _click(session, W / 2, H / 2)
+    session.key("_1")
+    _drag(session, (W / 2 + 40, H / 2), (W / 2 + 190, H / 2), steps=6)
+    session.release(W / 2 + 190, H / 2, LEFT)
+    posed = trimesh.Trimesh(np.asarray(session.vertices), mesh.faces, process=False)
+    turned = np.einsum("ij,ij->i", mesh.face_normals, posed.face_normals) < 0
+    assert turned.sum() > 0
+    np.testing.assert_array_equal(session.flipped, turned)
+    assert session.status()["flipped"] == turned.sum()
+    assert "flipped faces " + f"{turned.sum():,}" in "\n".join(
+        __import__("viewer.overlay", fromlist=["x"]).status_lines(session.status()))
+    assert "by the mask" in session.message and "weight changes" in session.message
+    flags = session.fold_flags()
+    assert set(np.flatnonzero(flags)) == set(mesh.faces[turned].ravel())
+    # The same stroke without the mask turns fewer faces (here none): the blame is right.
+    from brushes.recipe import apply_stroke
+    plain = {k: v for k, v in session.history.applied[0].items() if k != "mask"}
+    unmasked = trimesh.Trimesh(apply_stroke(mesh.vertices, plain), mesh.faces, process=False)
+    assert (np.einsum("ij,ij->i", mesh.face_normals, unmasked.face_normals) < 0).sum() < turned.sum()
+    session.key("Z", MOD_CTRL)
+    assert session.status()["flipped"] == 0 and not session.fold_flags().any()
+
+
+def _two_balls():
+    """A unit ball at the origin and a second one behind it along -z (hidden from +z)."""
+    a = trimesh.creation.icosphere(subdivisions=3)
+    b = trimesh.creation.icosphere(subdivisions=3)
+    b.vertices = b.vertices + [0, 0, -2.2]
+    vertices = np.vstack([a.vertices, b.vertices])
+    faces = np.vstack([a.faces, b.faces + len(a.vertices)])
+    return vertices, faces, len(a.vertices)
+
+
+def test_mask_paints_only_the_surface_seen_around_the_cursor(tmp_path):
+    vertices, faces, n_front = _two_balls()
+    session = Session(vertices, faces, size=(W, H), out_dir=tmp_path)
+    session.camera.yaw, session.camera.pitch = 0.0, 0.0   # looking down -z at the front ball
+    session.radius = 4.0                                  # reaches the hidden ball and the back
+    session.key("_6")
+    hit = session.pick(W / 2, H / 2)
+    assert hit.hit and hit.face < len(trimesh.creation.icosphere(subdivisions=3).faces)
+    _click(session, W / 2, H / 2)
+    held = session.hold > 0
+    front = np.zeros(len(vertices), bool)
+    front[:n_front] = True
+    # Hand-checked geometry: the camera sits on +z, so the front ball's vertices with z > 0
+    # face it; nothing of the ball behind and nothing of the far side may be painted.
+    assert held[:n_front][vertices[:n_front, 2] > 0.2].all()
+    assert not held[~front].any()
+    assert not held[:n_front][vertices[:n_front, 2] < -0.2].any()
+
+
+def test_twist_drag_of_an_eighth_of_the_window_turns_22_5_degrees(session, sphere):
+    # The gesture rule (viewer.gesture.twist): 180 degrees per window width, so an eighth of
+    # the window turns 22.5 degrees, not the 80 a fixed half degree per pixel gave.
+    session.key("_2")
+    _drag(session, (W / 2, H / 2), (W / 2 + W / 8, H / 2))
+    session.release(W / 2 + W / 8, H / 2, LEFT)
+    stroke = session.history.applied[0]
+    assert stroke["degrees"] == pytest.approx(22.5)
+    np.testing.assert_allclose(stroke["axis"], session.camera.view_axis(), atol=1e-12)
+    # What the user sees: the surface right at the centre turns by that angle. Reference:
+    # scipy's Rotation about the recorded axis applied to the point's offset from the centre
+    # (the twist's core turns rigidly, the engine's documented guarantee).
+    from scipy.spatial.transform import Rotation
+    center = np.array(stroke["center"])
+    offsets = sphere[0] - center
+    k = int(np.argmin(np.linalg.norm(offsets, axis=1)))
+    turned = Rotation.from_rotvec(np.radians(22.5) * np.array(stroke["axis"])).apply(offsets[k])
+    moved = np.asarray(session.vertices)[k] - center
+    assert np.linalg.norm(offsets[k]) < 0.2 * stroke["radius"]
+    np.testing.assert_allclose(moved, turned, atol=0.02 * np.linalg.norm(offsets[k]))
+
+
+def test_brush_ring_follows_the_surface_after_undo(session):
+    edge = W / 2
+    while session.pick(edge, H / 2).hit:  # the ball's right rim on screen, at rest
+        edge += 1
+    x, y = edge + 15, H / 2
+    _drag(session, (edge - 10, H / 2), (edge + 70, H / 2), steps=6)
+    session.release(edge + 70, H / 2, LEFT)
+    session.motion(x, y)
+    assert session.hover is not None  # the pulled-out surface is under the cursor
+    session.key("Z", MOD_CTRL)
+    expected = session.pick(x, y)
+    assert not expected.hit  # back at rest, nothing is under the cursor there
+    assert session.hover is None and session.brush_outline() is None
+
+
+def test_mirror_ring_sits_on_the_body(tmp_path):
+    # A ball off the mirror plane: the reflection of a point on it lies in empty space.
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    shifted = mesh.vertices + [1.6, 0, 0]
+    session = Session(shifted, mesh.faces, size=(W, H), out_dir=tmp_path)
+    session.key("BACKSLASH")
+    session.motion(W / 2, H / 2)
+    assert session.hover is not None
+    assert session.mirror_outline() is None  # nothing of the body within reach of the twin
+    symmetric = Session(mesh.vertices, mesh.faces, size=(W, H), out_dir=tmp_path)
+    symmetric.key("BACKSLASH")
+    symmetric.motion(W / 2 + 40, H / 2 + 20)
+    center, radius = symmetric.brush_outline()
+    twin, twin_radius = symmetric.mirror_outline()
+    # On the symmetric ball the twin is the reflected point, up to the vertex spacing, and
+    # it lies on the surface (a vertex of the mesh).
+    assert np.min(np.linalg.norm(mesh.vertices - twin, axis=1)) == 0.0
+    assert np.linalg.norm(twin - center * [-1, 1, 1]) < 0.2 and twin_radius == radius
+
+
+def test_messages_clear_and_questions_stay(sphere, tmp_path):
+    clock = FakeClock()
+    session = Session(*sphere, size=(W, H), out_dir=tmp_path, clock=clock)
+    session.key("Z", MOD_CTRL)
+    assert session.status()["message"] == "nothing to undo"
+    clock.now += 7.9
+    assert session.status()["message"] == "nothing to undo"
+    clock.now += 0.2
+    assert session.status()["message"] == ""
+    session.say("answer me", sticky=True)
+    clock.now += 1000
+    assert session.message == "answer me"
+
+
+def _journalled(tmp_path, sphere, **kwargs):
+    path = tmp_path / "ball.obj"
+    trimesh.Trimesh(*sphere, process=False).export(path)
+    return Session(*sphere, size=(W, H), mesh_path=path, **kwargs), path
+
+
+def test_a_normal_close_is_not_called_interrupted_later(sphere, tmp_path):
+    from viewer.journal import ended_cleanly, find_journal, read_events
+    session, path = _journalled(tmp_path, sphere)
+    _drag(session, (W / 2, H / 2), (W / 2 + 30, H / 2))
+    session.release(W / 2 + 30, H / 2, LEFT)
+    session.key("Q", MOD_CTRL)
+    session.close()
+    session.close()  # twice is harmless
+    events = read_events(find_journal(path))[1]
+    assert [e["event"] for e in events] == ["stroke", "closed"] and ended_cleanly(events)
+    again, _ = _journalled(tmp_path, sphere)
+    assert "closed without saving a recipe" in again.message
+    assert "interrupted" not in again.message
+
+
+def test_a_stray_drag_at_the_recovery_question_keeps_the_strokes(sphere, tmp_path):
+    from viewer.journal import find_journal, read_journal
+    session, path = _journalled(tmp_path, sphere)
+    _drag(session, (W / 2, H / 2), (W / 2 + 30, H / 2))
+    session.release(W / 2 + 30, H / 2, LEFT)
+    saved = read_journal(find_journal(path))
+    # The process dies here (no close). The next start asks; a drag does not answer.
+    again, _ = _journalled(tmp_path, sphere)
+    assert "interrupted" in again.message and again.pending_recovery is not None
+    _drag(again, (W / 2 - 20, H / 2), (W / 2 + 20, H / 2 + 30))
+    again.release(W / 2 + 20, H / 2 + 30, LEFT)
+    assert again.history.position == 0 and again.message.startswith("answer first")
+    assert read_journal(find_journal(path)) == saved
+    assert again.key("RETURN") == "recover" and again.history.position == 1
+    np.testing.assert_array_equal(again.vertices, session.vertices)

@@ -26,6 +26,8 @@ __all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "BINDING
 
 MODEL_NAME = "mascot.obj"
 TITLE = "pliant"
+#: Diameter of a pin marker's brass disc in pixels (a 3-pixel dark rim goes round it).
+PIN_PIXELS = 14.0
 
 
 class ViewerError(RuntimeError):
@@ -97,13 +99,59 @@ class Viewer:
         panel = tuple(int(255 * c) for c in palette.PANEL)
         self.panel = pyglet.shapes.Rectangle(0, 0, 10, 10, color=panel)
         self.panel.opacity = 204
+        self._legend_batch = pyglet.graphics.Batch()
+        self._legend = self._make_legend(pyglet, self._legend_batch, text)
+        self._flags_version = None
         self.help = pyglet.text.Label("\n".join(overlay.help_lines(BINDINGS)), x=24, y=0,
                                       anchor_y="top", multiline=True, width=820, font_size=10,
                                       font_name=("DejaVu Sans Mono", "Consolas", "Menlo", "monospace"),
                                       color=text)
         window.push_handlers(self.keys)
         window.push_handlers(self)
+        # pyglet holds pushed handlers weakly: the window keeps its viewer alive, so whoever
+        # holds the window (pyglet's loop holds neither) holds the handlers too.
+        window.pliant_viewer = self
         session.resize(*window.get_size())
+
+    #: The F2 legend: a ramp bar of this many cells and size (window units), top right.
+    LEGEND_CELLS, LEGEND_WIDTH, LEGEND_HEIGHT = 48, 240, 14
+
+    def _make_legend(self, pyglet, batch, text):
+        cells = []
+        colours = palette.ramp(np.linspace(0.0, 1.0, self.LEGEND_CELLS))
+        width = self.LEGEND_WIDTH / self.LEGEND_CELLS
+        rim = pyglet.shapes.Rectangle(0, 0, self.LEGEND_WIDTH + 4, self.LEGEND_HEIGHT + 4,
+                                      color=tuple(int(255 * c) for c in palette.PANEL), batch=batch)
+        for k, colour in enumerate(colours):
+            cells.append(pyglet.shapes.Rectangle(0, 0, width + 0.5, self.LEGEND_HEIGHT,
+                                                 color=tuple(int(round(255 * c)) for c in colour),
+                                                 batch=batch))
+        low = pyglet.text.Label("0", font_size=10, color=text, anchor_x="left", batch=batch)
+        high = pyglet.text.Label("", font_size=10, color=text, anchor_x="right", batch=batch)
+        title = pyglet.text.Label("distance moved from rest", font_size=10, color=text,
+                                  anchor_x="left", batch=batch)
+        return {"rim": rim, "cells": cells, "low": low, "high": high, "title": title, "top": None}
+
+    def legend_box(self):
+        """(x, y, width, height) of the legend's colour bar in window units (top right)."""
+        width, height = self.window.get_size()
+        return (width - self.LEGEND_WIDTH - 24, height - 44, self.LEGEND_WIDTH, self.LEGEND_HEIGHT)
+
+    def _draw_legend(self):
+        legend = self._legend
+        x, y, w, h = self.legend_box()
+        legend["rim"].position = (x - 2, y - 2)
+        step = w / self.LEGEND_CELLS
+        for k, cell in enumerate(legend["cells"]):
+            cell.position = (x + k * step, y)
+        top = float(self.session.magnitude().max())
+        if top != legend["top"]:
+            legend["high"].text = f"{top:.3g}"
+            legend["top"] = top
+        legend["low"].position = (x, y - 16, 0)
+        legend["high"].position = (x + w, y - 16, 0)
+        legend["title"].position = (x, y + h + 6, 0)
+        self._legend_batch.draw()
 
     # ------------------------------------------------------------------ events
     def on_resize(self, width, height):
@@ -138,6 +186,13 @@ class Viewer:
     def on_close(self):
         self.session.close()
 
+    def close(self):
+        """End the session (journal kept or removed, see :meth:`Session.close`) and close the
+        window; safe to call more than once."""
+        self.session.close()
+        if not self.window.has_exit or self.window.context is not None:
+            self.window.close()
+
     def on_draw(self):
         start = self.session.clock()
         self.draw()
@@ -159,6 +214,9 @@ class Viewer:
         if session.markers_version != self._markers_version:
             self.mesh.set_hold(session.hold)
             self._markers_version = session.markers_version
+        if session.flags_version != self._flags_version:
+            self.mesh.set_fold(session.fold_flags())
+            self._flags_version = session.flags_version
 
     def draw(self):
         """Draw one frame into the current framebuffer."""
@@ -181,18 +239,20 @@ class Viewer:
             center, radius = outline
             right, up = camera.right(), camera.up()
             self.markers.loop(ring_points(center, radius, right, up), palette.BRUSH_RING)
-            plane = session.mirror_plane()
-            if plane is not None:
-                normal, point = plane
-                twin = center - 2.0 * float((center - point) @ normal) * normal
-                self.markers.loop(ring_points(twin, radius, right, up), palette.BRUSH_RING_MIRROR)
+            twin = session.mirror_outline()
+            if twin is not None:
+                self.markers.loop(ring_points(twin[0], twin[1], right, up),
+                                  palette.BRUSH_RING_MIRROR)
         if session.pins:
-            self.markers.points(np.asarray(session.pins), palette.PIN, size=10.0)
+            self.markers.points(np.asarray(session.pins), palette.PIN, size=PIN_PIXELS,
+                                outline=palette.PIN_RIM, outline_width=3.0)
         gl.glDisable(gl.GL_DEPTH_TEST)
         text = "\n".join(overlay.status_lines(session.status()))
         if text != self.status.text:  # a new layout only when the words change
             self.status.text = text
         self.status.draw()
+        if session.show_magnitude:
+            self._draw_legend()
         if session.show_help:
             self.help.y = height - 24
             self.panel.x, self.panel.y = 12, max(height - 36 - self.help.content_height, 0)
@@ -271,8 +331,14 @@ def run(mesh_path=None, *, recover=False):
         0.
     """
     import pyglet
-    open_viewer(mesh_path, recover=recover)
-    pyglet.app.run(1 / 60)
+    # pyglet keeps its windows (pyglet.app.windows) and their event handlers by weak
+    # reference: the viewer must stay referenced for as long as the loop runs, or its window
+    # and handlers are collected and the loop runs on without them.
+    viewer = open_viewer(mesh_path, recover=recover)
+    try:
+        pyglet.app.run(1 / 60)
+    finally:
+        viewer.close()
     return 0
 
 

@@ -16,9 +16,10 @@ Rules (all rates are keyword-only and have these defaults):
 
 * grab: ``move`` is the world displacement of the cursor in the plane through ``center``
   perpendicular to the view axis, so the grabbed point stays under the cursor.
-* twist: ``degrees = degrees_per_pixel * dx`` (horizontal drag, 0.5 degree per pixel) about
-  ``axis`` = the view axis (pointing into the screen) or, with ``normal=``, the surface normal
-  turned to point into the screen.  With the right-hand rule about an axis pointing into the
+* twist: ``degrees = degrees_per_width * dx / width`` (horizontal drag; a drag across the whole
+  window turns 180 degrees, so a modest drag of an eighth of the window turns 22.5 degrees at
+  any window size) about ``axis`` = the view axis (pointing into the screen) or, with
+  ``normal=``, the surface normal turned to point into the screen.  With the right-hand rule about an axis pointing into the
   screen, dragging right turns the surface clockwise on screen, like a dial gripped at its top.
 * scale: ``factor = exp(per_pixel * dy)`` (vertical drag, 0.005 per pixel): up grows.
 * pinch: ``gradient = strength * (d d^T - I/3)`` with ``strength = per_pixel * |drag|``
@@ -69,9 +70,10 @@ def grab(camera, center, radius, start, current, width, height):
     return params
 
 
-def twist(camera, center, radius, start, current, *, normal=None, degrees_per_pixel=0.5):
-    """Twist: ``degrees = degrees_per_pixel * dx`` about the view axis, or about ``normal``
-    ((3,) float64, need not be unit) turned to point into the screen."""
+def twist(camera, center, radius, start, current, width, *, normal=None, degrees_per_width=180.0):
+    """Twist: ``degrees = degrees_per_width * dx / width`` about the view axis, or about
+    ``normal`` ((3,) float64, need not be unit) turned to point into the screen. ``width`` is
+    the window width in window units."""
     params = _base("twist", center, radius)
     dx = float(checks.vector("current", current, length=2)[0] - checks.vector("start", start, length=2)[0])
     view = camera.view_axis()
@@ -83,7 +85,8 @@ def twist(camera, center, radius, start, current, *, normal=None, degrees_per_pi
         if axis @ view < 0:
             axis = -axis
     params["axis"] = axis.tolist()
-    params["degrees"] = checks.number("degrees_per_pixel", degrees_per_pixel) * dx
+    rate = checks.number("degrees_per_width", degrees_per_width) / checks.positive("width", width)
+    params["degrees"] = rate * dx
     return params
 
 
@@ -122,7 +125,7 @@ def drag_params(kind, camera, center, radius, start, current, width, height, *, 
     if kind == "grab":
         return grab(camera, center, radius, start, current, width, height)
     if kind == "twist":
-        return twist(camera, center, radius, start, current, normal=normal)
+        return twist(camera, center, radius, start, current, width, normal=normal)
     if kind == "scale":
         return scale(center, radius, start, current)
     if kind == "pinch":

@@ -7,7 +7,8 @@ loses at most the stroke in progress.  The file holds:
 * line 1, the header: ``{"format": "pliant-journal", "version": 1, "mesh": <absolute path>,
   "vertices": n, "rest_sha256": <hex digest of the rest positions>}``;
 * then events: ``{"event": "stroke", "stroke": {...}}``, ``{"event": "undo"}``,
-  ``{"event": "redo"}``.
+  ``{"event": "redo"}``, and ``{"event": "closed"}`` when the viewer was closed normally with
+  strokes not saved as a recipe (:meth:`Journal.end`; see :func:`ended_cleanly`).
 
 A record is written with a single ``write`` and ends with a newline, and JSON text holds no
 raw newline, so every newline-terminated line is a whole record; an unterminated last line is
@@ -38,13 +39,13 @@ from brushes.atomic import atomic_write
 
 __all__ = [
     "Journal", "JournalError", "JournalMismatch", "SUFFIX", "journal_path", "find_journal",
-    "read_events", "replay_events", "read_journal", "rest_checksum",
+    "read_events", "replay_events", "read_journal", "rest_checksum", "ended_cleanly",
 ]
 
 SUFFIX = ".pliant-journal"
 FORMAT = "pliant-journal"
 VERSION = 1
-EVENTS = ("stroke", "undo", "redo")
+EVENTS = ("stroke", "undo", "redo", "closed")
 
 
 class JournalError(ValueError):
@@ -122,7 +123,7 @@ def read_events(path, *, rest=None):
             raise JournalError(f"journal: line {number} of {path!r} is not a record")
         if number > 1 and (record.get("event") not in EVENTS
                            or (record["event"] == "stroke" and not isinstance(record.get("stroke"), dict))):
-            raise JournalError(f"journal: line {number} of {path!r} is not a stroke, undo or redo event")
+            raise JournalError(f"journal: line {number} of {path!r} is not a stroke, undo, redo or closed event")
         records.append(record)
     header = records[0]
     if header.get("format") != FORMAT:
@@ -152,9 +153,17 @@ def replay_events(events):
             if position == len(strokes):
                 raise JournalError(f"events: event {i} redoes past the last stroke")
             position += 1
+        elif kind == "closed":
+            pass
         else:
             raise JournalError(f"events: event {i} has unknown kind {kind!r}")
     return strokes, position
+
+
+def ended_cleanly(events):
+    """True when the last event is ``closed``: the session was closed normally (its strokes were
+    kept because they were not saved as a recipe), not interrupted."""
+    return bool(events) and events[-1].get("event") == "closed"
 
 
 def read_journal(path, *, rest=None):
@@ -251,6 +260,13 @@ class Journal:
         except FileNotFoundError:
             return
         _fsync_folder(os.path.dirname(self.path))
+
+    def end(self):
+        """Record that the session closed normally (only when this journal holds records),
+        then close."""
+        if self._file is not None:
+            self._write({"event": "closed"}, "closed")
+        self.close()
 
     def close(self):
         if self._file is not None:

@@ -22,8 +22,8 @@ def status_lines(status):
     status : dict
         From :meth:`viewer.session.Session.status`: keys ``tool``, ``radius``, ``falloff``,
         ``poisson``, ``mirror`` (axis name or None), ``vertices``, ``volume_change``
-        (ratio or None), ``frame_ms`` (float or None), ``pins``, ``strokes``, ``redo``,
-        ``message`` (str or empty).
+        (ratio or None), ``flipped`` (faces turned over since load), ``frame_ms`` (float or
+        None), ``pins``, ``strokes``, ``redo``, ``message`` (str or empty).
 
     Returns
     -------
@@ -35,6 +35,7 @@ def status_lines(status):
         f"{status['tool']}   radius {status['radius']:.3g}   falloff {status['falloff']}   "
         f"Poisson {status['poisson']:.2f}   {mirror}",
         f"{status['vertices']:,} vertices   volume {format_volume_change(status.get('volume_change'))}"
+        f"   flipped faces {status.get('flipped', 0):,}"
         f"   pins {status.get('pins', 0)}   strokes {status.get('strokes', 0)}"
         f" (+{status.get('redo', 0)} to redo)"
         + (f"   draw {frame:.1f} ms" if frame is not None else ""),

@@ -8,7 +8,9 @@ Nothing here touches OpenGL.
 The look, in words: the model is unglazed workshop clay (a warm, slightly red earth tone)
 lit by a warm key lamp from the upper left and a cool fill bounced off slate from the
 lower right, on a flat slate-grey ground. Edits are shown as a ramp from cool slate
-through sand to ember; held (masked) areas take on a moss-green tint; pins are brass.
+through sand to ember, starting pale enough to stand off the ground; held (masked) areas
+take on a moss-green tint; faces turned over take a violet warning tint; pins are brass discs
+rimmed in near-black.
 """
 
 import numpy as np
@@ -16,7 +18,8 @@ import numpy as np
 __all__ = [
     "BACKGROUND", "CLAY", "CLAY_BACK", "KEY_COLOUR", "KEY_DIRECTION", "FILL_COLOUR",
     "FILL_DIRECTION", "AMBIENT_SKY", "AMBIENT_GROUND", "WRAP", "GLOSS", "SHEEN",
-    "MASK_TINT", "PIN", "BRUSH_RING", "BRUSH_RING_MIRROR", "TEXT", "PANEL",
+    "MASK_TINT", "FOLD_TINT", "PIN", "PIN_RIM", "BRUSH_RING", "BRUSH_RING_MIRROR", "TEXT",
+    "PANEL", "contrast_ratio",
     "RAMP", "ramp",
 ]
 
@@ -44,8 +47,11 @@ SHEEN = 0.10
 
 #: Colour that masked (held) vertices are tinted towards, in proportion to their hold.
 MASK_TINT = (0.330, 0.470, 0.300)
-#: Pin markers.
-PIN = (0.880, 0.720, 0.300)
+#: Colour that vertices of faces turned over (folded) are tinted towards.
+FOLD_TINT = (0.620, 0.300, 0.900)
+#: Pin markers: a brass disc on a near-black rim.
+PIN = (0.950, 0.780, 0.300)
+PIN_RIM = (0.060, 0.060, 0.070)
 #: The brush outline at its radius, and its mirrored twin.
 BRUSH_RING = (0.960, 0.930, 0.850)
 BRUSH_RING_MIRROR = (0.600, 0.640, 0.700)
@@ -53,13 +59,31 @@ BRUSH_RING_MIRROR = (0.600, 0.640, 0.700)
 TEXT = (0.930, 0.910, 0.870)
 PANEL = (0.110, 0.120, 0.140)
 
-#: Displacement-magnitude ramp: (position in [0, 1], colour) stops, cool slate -> sand -> ember.
+#: Displacement-magnitude ramp: (position in [0, 1], colour) stops, pale slate -> sand -> ember.
+#: The unmoved end is pale so that it stands off the slate ground (contrast ratio above 4.5,
+#: see :func:`contrast_ratio`).
 RAMP = (
-    (0.00, (0.300, 0.380, 0.480)),
-    (0.45, (0.560, 0.620, 0.600)),
-    (0.70, (0.900, 0.800, 0.550)),
-    (1.00, (0.860, 0.310, 0.160)),
+    (0.00, (0.600, 0.690, 0.760)),
+    (0.45, (0.760, 0.780, 0.640)),
+    (0.70, (0.930, 0.780, 0.480)),
+    (1.00, (0.880, 0.300, 0.150)),
 )
+
+
+def contrast_ratio(a, b):
+    """Contrast ratio of two sRGB colours (three floats in [0, 1]), from 1 to 21.
+
+    The W3C formula (WCAG 2.1, "contrast ratio" and "relative luminance"):
+    ``(L1 + 0.05) / (L2 + 0.05)`` with ``L = 0.2126 R + 0.7152 G + 0.0722 B`` of the
+    linearised channels (``c / 12.92`` up to 0.04045, else ``((c + 0.055) / 1.055) ** 2.4``).
+    """
+    def luminance(colour):
+        c = np.asarray(colour, dtype=np.float64)
+        linear = np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
+        return float(linear @ [0.2126, 0.7152, 0.0722])
+
+    hi, lo = sorted((luminance(a), luminance(b)), reverse=True)
+    return (hi + 0.05) / (lo + 0.05)
 
 
 def ramp(values):
@@ -103,7 +127,7 @@ def glsl_constants():
         vec3("KEY_COLOUR", KEY_COLOUR), vec3("KEY_DIRECTION", key),
         vec3("FILL_COLOUR", FILL_COLOUR), vec3("FILL_DIRECTION", fill),
         vec3("AMBIENT_SKY", AMBIENT_SKY), vec3("AMBIENT_GROUND", AMBIENT_GROUND),
-        vec3("MASK_TINT", MASK_TINT),
+        vec3("MASK_TINT", MASK_TINT), vec3("FOLD_TINT", FOLD_TINT),
         f"const float WRAP = {WRAP:.4f};",
         f"const float GLOSS = {GLOSS:.4f};",
         f"const float SHEEN = {SHEEN:.4f};",

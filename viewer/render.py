@@ -136,6 +136,7 @@ layout(location = 0) in vec3 position;
 layout(location = 1) in vec3 normal;
 layout(location = 2) in float magnitude;
 layout(location = 3) in float hold;
+layout(location = 4) in float fold;
 
 uniform mat4 u_view;
 uniform mat4 u_projection;
@@ -144,6 +145,7 @@ out vec3 v_normal;
 out vec3 v_position;
 out float v_magnitude;
 out float v_hold;
+out float v_fold;
 
 void main() {
     vec4 p = u_view * vec4(position, 1.0);
@@ -154,6 +156,7 @@ void main() {
     v_normal = mat3(u_view) * (len > 0.0 ? normal / len : normal);
     v_magnitude = magnitude;
     v_hold = hold;
+    v_fold = fold;
     gl_Position = u_projection * p;
 }
 """
@@ -165,6 +168,7 @@ in vec3 v_normal;
 in vec3 v_position;
 in float v_magnitude;
 in float v_hold;
+in float v_fold;
 
 uniform float u_show_magnitude;  // 0 or 1
 uniform float u_magnitude_scale; // 1 / magnitude shown at the top of the ramp
@@ -190,6 +194,7 @@ void main() {
         base = ramp_colour(clamp(v_magnitude * u_magnitude_scale, 0.0, 1.0));
     }
     base = mix(base, MASK_TINT, clamp(v_hold, 0.0, 1.0) * u_hold_strength);
+    base = mix(base, FOLD_TINT, clamp(v_fold, 0.0, 1.0) * 0.85);
     if (!gl_FrontFacing) {
         n = -n;
         base = CLAY_BACK;
@@ -264,7 +269,7 @@ class MeshRenderer:
     Notes
     -----
     Needs a current OpenGL 3.3+ context. Per-vertex attributes: position and normal
-    (float32 x 3), displacement magnitude and hold weight (float32). :meth:`set_positions`
+    (float32 x 3), displacement magnitude, hold weight and fold flag (float32). :meth:`set_positions`
     recomputes normals with the precomputed operator and replaces both buffers in place.
     """
 
@@ -285,6 +290,7 @@ class MeshRenderer:
         self._normals = BufferObject(12 * n)
         self._magnitude = BufferObject(4 * n)
         self._hold = BufferObject(4 * n)
+        self._fold = BufferObject(4 * n)
         indices = np.ascontiguousarray(self.faces, dtype=np.uint32).reshape(-1)
         self._indices = BufferObject(max(indices.nbytes, 4))
         self._indices.set_data_region(indices.ctypes.data, 0, indices.nbytes)
@@ -292,7 +298,8 @@ class MeshRenderer:
         self.vao = VertexArray()
         with self.vao:
             for location, buffer, width in ((0, self._positions, 3), (1, self._normals, 3),
-                                            (2, self._magnitude, 1), (3, self._hold, 1)):
+                                            (2, self._magnitude, 1), (3, self._hold, 1),
+                                            (4, self._fold, 1)):
                 buffer.bind()
                 gl.glEnableVertexAttribArray(location)
                 gl.glVertexAttribPointer(location, width, gl.GL_FLOAT, gl.GL_FALSE, 0, 0)
@@ -303,6 +310,7 @@ class MeshRenderer:
         self.set_positions(vertices)
         self.set_magnitude(None)
         self.set_hold(None)
+        self.set_fold(None)
 
     @staticmethod
     def _upload(buffer, array):
@@ -372,6 +380,21 @@ class MeshRenderer:
             raise checks.FieldError("weights", f"must have {self.n_vertices} entries, got {len(weights)}")
         self._upload(self._hold, weights)
 
+    def set_fold(self, flags):
+        """Per-vertex fold flag in [0, 1] (corners of faces turned over), shown as a strong
+        tint (``None`` clears it).
+
+        Parameters
+        ----------
+        flags : (n,) float or None
+        """
+        if flags is None:
+            flags = np.zeros(self.n_vertices, dtype=np.float32)
+        flags = _as_f32(flags, (), "flags")
+        if len(flags) != self.n_vertices:
+            raise checks.FieldError("flags", f"must have {self.n_vertices} entries, got {len(flags)}")
+        self._upload(self._fold, flags)
+
     def draw(self, view, projection):
         """Draw the mesh with depth testing.
 
@@ -397,7 +420,8 @@ class MeshRenderer:
 
     def delete(self):
         """Free the GL objects now rather than at garbage collection."""
-        for buffer in (self._positions, self._normals, self._magnitude, self._hold, self._indices):
+        for buffer in (self._positions, self._normals, self._magnitude, self._hold, self._fold,
+                       self._indices):
             buffer.delete()
         self.vao.delete()
         self.program.delete()
@@ -458,9 +482,13 @@ class MarkerRenderer:
         from pyglet import gl
         self._draw(points, gl.GL_LINE_LOOP, colour)
 
-    def points(self, points, colour, *, size=9.0):
-        """Round dots of ``size`` pixels at ``points`` ((k, 3) float)."""
+    def points(self, points, colour, *, size=9.0, outline=None, outline_width=3.0):
+        """Round dots of ``size`` pixels at ``points`` ((k, 3) float), optionally on a disc of
+        ``outline`` colour ``outline_width`` pixels wider all round (reads on any surface)."""
         from pyglet import gl
+        if outline is not None:
+            self._draw(points, gl.GL_POINTS, outline, size=size + 2.0 * outline_width,
+                       round_points=True)
         self._draw(points, gl.GL_POINTS, colour, size=size, round_points=True)
 
     def delete(self):

@@ -16,6 +16,7 @@ its arguments through untouched.
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 import time
@@ -24,7 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from brushes import checks
-from brushes.surface import signed_volume
+from brushes.surface import face_cross_products, signed_volume
 from viewer import gesture
 from viewer.camera import OrbitCamera
 from viewer.tools import REGISTERED, Tool
@@ -95,6 +96,8 @@ POISSON_RANGE = (0.0, 0.5)
 #: Preview tolerance as a fraction of the model's bounding-box diagonal: vertices the brush
 #: provably moves less than this are left alone while dragging (far below a pixel).
 PREVIEW_TOLERANCE = 1e-5
+#: Seconds a status message stays on screen (questions stay until answered).
+MESSAGE_SECONDS = 8.0
 
 
 def chord(symbol_name, modifiers=0):
@@ -138,6 +141,28 @@ def sphere_mesh(subdivisions=4, radius=1.0):
     return np.asarray(mesh.vertices, dtype=np.float64), np.asarray(mesh.faces, dtype=np.int64)
 
 
+def _recovery_question(path, *, first=False):
+    """The status-line question about a journal found at start-up."""
+    from viewer.journal import ended_cleanly, read_events
+    try:
+        events = read_events(path)[1]
+        how = ("kept from a session closed without saving a recipe" if ended_cleanly(events)
+               else "left by an interrupted session")
+    except (OSError, ValueError):
+        how = "left by an earlier session (the journal is damaged; Enter says why)"
+    lead = "answer first: " if first else ""
+    return f"{lead}unsaved strokes {how}: Enter replays them, Backspace discards them"
+
+
+def _fold_message(count, mask_caused):
+    """The status line after a stroke turned ``count`` faces over."""
+    what = f"{count} face{'s' if count != 1 else ''} turned over"
+    if mask_caused:
+        return (f"{what} by the mask: where its weight changes a mask gives up the no-folding "
+                "guarantee; soften its edge or move less (Ctrl+Z undoes)")
+    return f"{what} (normals past 90 degrees from rest; Ctrl+Z undoes)"
+
+
 class _Drag:
     """What the current mouse drag is doing: ``mode`` "orbit", "pan" or "tool" (then ``tool``
     and its ``state``)."""
@@ -174,10 +199,13 @@ class Session:
         The file the journal is named after (``<anchor>.pliant-journal``); default
         ``mesh_path``. The viewer anchors the bundled model's journal in the current folder
         so that nothing is written into the installed package.
+    clock : callable, optional, keyword-only
+        Seconds from a monotonic clock (default ``time.monotonic``); it times how long a
+        status message stays (tests pass their own clock instead of waiting).
     """
 
     def __init__(self, vertices, faces, *, doc=None, mesh_path=None, out_dir=None,
-                 size=(1024, 768), journal=True, journal_anchor=None):
+                 size=(1024, 768), journal=True, journal_anchor=None, clock=None):
         from brushes.formats import MeshDoc
         from viewer.history import History
         from viewer.picking import Picker
@@ -202,6 +230,9 @@ class Session:
         self.diagonal = float(np.linalg.norm(hi - lo)) or 1.0
         self.tolerance = PREVIEW_TOLERANCE * self.diagonal
         self.volume_rest = signed_volume(rest, self.faces)
+        self._rest_cross = face_cross_products(rest, self.faces)
+        self.flipped = np.zeros(len(self.faces), dtype=bool)  # faces turned > 90 deg from rest
+        self.flags_version = 0  # bumped when `flipped` changes
         self.camera = OrbitCamera(yaw=math.radians(25.0), pitch=math.radians(12.0))
         self.camera.frame(lo, hi, aspect=self.width / self.height)
 
@@ -215,8 +246,10 @@ class Session:
         self.hold = np.zeros(len(rest))  # painted hold in [0, 1] per vertex
         self.show_magnitude = False
         self.show_help = False
-        self.message = ""
+        self._clock = clock if clock is not None else time.monotonic
+        self._message, self._message_at, self._message_sticky = "", 0.0, False
         self.hover = None  # picked point under the cursor, or None
+        self._cursor = None  # last window point of a motion event
         self.frame_ms = None
         self._frame_times = []
         self.saved_position = 0  # history position last saved as a recipe
@@ -238,6 +271,7 @@ class Session:
 
         self.journal = None
         self.pending_recovery = None
+        self._closed = False
         anchor = journal_anchor if journal_anchor is not None else self.mesh_path
         self.journal_anchor = None if anchor is None else os.path.abspath(os.fspath(anchor))
         if journal and self.journal_anchor is not None:
@@ -246,8 +280,24 @@ class Session:
             found = find_journal(self.journal_anchor)
             if found:
                 self.pending_recovery = found
-                self.message = ("unsaved strokes from an interrupted session were found: Enter "
-                                "replays them; Backspace or a new stroke discards them")
+                self.say(_recovery_question(found), sticky=True)
+
+    # ------------------------------------------------------------------ messages
+    @property
+    def message(self):
+        """The status message now on screen ("" once it has expired)."""
+        if self._message_sticky or self._clock() - self._message_at < MESSAGE_SECONDS:
+            return self._message
+        return ""
+
+    @message.setter
+    def message(self, text):
+        self.say(text)
+
+    def say(self, text, *, sticky=False):
+        """Show ``text`` in the status line for :data:`MESSAGE_SECONDS`, or with ``sticky``
+        until the next message (questions that wait for an answer)."""
+        self._message, self._message_at, self._message_sticky = str(text), self._clock(), sticky
 
     # ------------------------------------------------------------------ state for drawing
     @property
@@ -282,6 +332,60 @@ class Session:
             return None
         return np.asarray(self.hover), self.radius
 
+    def mirror_outline(self):
+        """Where to draw the mirrored brush: ``(center (3,), radius)`` on the body, or None.
+
+        The reflection of the brush centre is snapped to the nearest vertex of the shown
+        surface (on a symmetric model, the reflected point itself), so the second ring sits on
+        the body the reflected brush moves; None when mirroring is off, no brush is drawn, or
+        no surface lies within the radius of the reflected centre (the reflection moves
+        nothing there worth showing).
+        """
+        plane, outline = self.mirror_plane(), self.brush_outline()
+        if plane is None or outline is None:
+            return None
+        (normal, point), (center, radius) = plane, outline
+        twin = center - 2.0 * float((center - point) @ normal) * normal
+        offsets = self._shown - twin
+        d2 = np.einsum("ij,ij->i", offsets, offsets)
+        nearest = int(np.argmin(d2))
+        if d2[nearest] > radius**2:
+            return None
+        return self._shown[nearest].copy(), radius
+
+    @functools.cached_property
+    def neighbours(self):
+        """(n, n) scipy CSR matrix with a 1 where two vertices share an edge (faces fixed)."""
+        import scipy.sparse
+        f = self.faces
+        rows = np.concatenate([f[:, 0], f[:, 1], f[:, 2], f[:, 1], f[:, 2], f[:, 0]])
+        cols = np.concatenate([f[:, 1], f[:, 2], f[:, 0], f[:, 0], f[:, 1], f[:, 2]])
+        n = len(self.rest)
+        adjacency = scipy.sparse.csr_matrix((np.ones(len(rows), np.int8), (rows, cols)), shape=(n, n))
+        adjacency.data[:] = 1
+        return adjacency
+
+    @functools.cached_property
+    def _normal_operator(self):
+        from brushes.surface import vertex_normal_operator
+        return vertex_normal_operator(self.faces, len(self.rest))
+
+    def vertex_normals(self, indices):
+        """(k, 3) float64 unit area-weighted normals (:mod:`brushes.surface`'s formula) of the
+        shown surface at the vertices ``indices`` ((k,) int), from their faces only."""
+        rows = self._normal_operator[np.asarray(indices, dtype=np.int64)]
+        used = np.unique(rows.indices)
+        cross = face_cross_products(self._shown, self.faces[used])
+        summed = np.asarray(rows[:, used] @ cross, dtype=np.float64)
+        length = np.linalg.norm(summed, axis=1, keepdims=True)
+        return np.divide(summed, length, out=np.zeros_like(summed), where=length > 0)
+
+    def fold_flags(self):
+        """(n,) float32: 1 on the corners of faces turned more than 90 degrees from rest."""
+        flags = np.zeros(len(self.rest), dtype=np.float32)
+        flags[self.faces[self.flipped].reshape(-1)] = 1.0
+        return flags
+
     def mirror_plane(self):
         """``(normal (3,), point (3,))`` of the mirror plane, or None when mirroring is off."""
         if not self.mirror_on:
@@ -303,6 +407,7 @@ class Session:
             "volume_change": self.volume_change(),
             "frame_ms": self.frame_ms,
             "pins": len(self.pins),
+            "flipped": int(np.count_nonzero(self.flipped)),
             "strokes": self.history.position,
             "redo": len(self.history.strokes) - self.history.position,
             "message": self.message,
@@ -320,6 +425,7 @@ class Session:
 
     def motion(self, x, y):
         """The cursor moved with no button down: track the point under it for the outline."""
+        self._cursor = (float(x), float(y))
         hit = self.pick(x, y)
         self.hover = hit.point if hit.hit else None
 
@@ -337,6 +443,10 @@ class Session:
             tool = self.tools[self.tool]
             if not hit.hit and tool.orbit_off_model:
                 self._drag = _Drag("orbit", start)
+                return
+            if tool.edits and self.pending_recovery is not None:
+                # A stroke now would start a new journal over the unsaved one: ask first.
+                self.say(_recovery_question(self.pending_recovery, first=True), sticky=True)
                 return
             state = tool.press(self, start, hit, modifiers)
             if state is not None:
@@ -414,12 +524,22 @@ class Session:
         self.show(np.array(self.history.points))
 
     def commit(self, stroke):
-        """Apply one recipe stroke (dict): history, journal, picking and the shown shape."""
+        """Apply one recipe stroke (dict): history, journal, picking and the shown shape.
+
+        When the stroke turns faces over, the status line says how many, and when they lie
+        where a mask's weight changes it says that the mask is why (:func:`brushes.flow.apply`:
+        ``x + w (phi(x) - x)`` folds where the motion times the mask's gradient exceeds 1, even
+        though the flow ``phi`` itself cannot fold).
+        """
+        before, start = self.flipped.copy(), self.history.points
         points = self.history.push(stroke)
         if self.journal is not None:
             self.journal.append(stroke)
             self.pending_recovery = None
         self._after_change(points)
+        new = self.flipped & ~before
+        if new.any():
+            self.say(_fold_message(int(new.sum()), self._mask_turned(stroke, start, new)))
 
     def markers_changed(self):
         """Pins or mask changed: the window redraws them."""
@@ -480,7 +600,7 @@ class Session:
     def _do_recover_discard(self):
         if self.pending_recovery is not None:
             self.pending_recovery = None
-            self.message = "starting afresh: the old journal is replaced by the first stroke"
+            self.say("starting afresh: the old journal is replaced by the first stroke")
 
     def _do_cancel(self):
         self.cancel()
@@ -500,11 +620,33 @@ class Session:
         if drag is not None and drag.mode == "tool":
             drag.tool.cancel(self, drag.state)
 
+    def _mask_turned(self, stroke, start, faces):
+        """True when the mask is why the stroke turned ``faces`` ((m,) bool) over: the same
+        stroke without its mask, run on the corners of those faces only (a brush moves each
+        point independently), leaves fewer of them turned over."""
+        if stroke.get("mask") is None:
+            return False
+        from brushes.recipe import apply_stroke
+        corners = np.unique(self.faces[faces])
+        unmasked = np.array(start)
+        plain = {k: v for k, v in stroke.items() if k != "mask"}
+        unmasked[corners] = apply_stroke(start[corners], plain, groups=None)
+        cross = face_cross_products(unmasked, self.faces[faces])
+        still = np.einsum("ij,ij->i", self._rest_cross[faces], cross) < 0.0
+        return int(still.sum()) < int(faces.sum())
+
     def _after_change(self, points):
         self._shown = np.array(points)
         self.shown_version += 1
         self.picker.refit(self._shown)
         self._committed_volume = signed_volume(self._shown, self.faces)
+        flipped = np.einsum("ij,ij->i", self._rest_cross,
+                            face_cross_products(self._shown, self.faces)) < 0.0
+        if not np.array_equal(flipped, self.flipped):
+            self.flipped = flipped
+            self.flags_version += 1
+        if self._cursor is not None:  # the surface under the cursor may have moved or gone
+            self.motion(*self._cursor)
 
     def undo(self):
         """Undo the last applied stroke (no-op with a message when there is none)."""
@@ -559,13 +701,15 @@ class Session:
 
     def close(self):
         """End the session: the journal is removed when everything applied was saved as a
-        recipe (or nothing was done), and kept for recovery otherwise."""
-        if self.journal is None:
+        recipe (or nothing was done), and kept for recovery otherwise, marked as closed
+        normally (so the next start does not call it interrupted). Safe to call twice."""
+        if self.journal is None or self._closed:
             return
+        self._closed = True
         unsaved = self.history.position != self.saved_position or (
             self.history.position == 0 and self.pending_recovery is not None)
         if unsaved:
-            self.journal.close()
+            self.journal.end()
         else:
             self.journal.clear()
 

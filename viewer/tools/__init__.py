@@ -26,7 +26,8 @@ A **tool** subclasses :class:`~viewer.tools.base.Tool` (a command set with point
 behaviour) and sets ``name`` (the action ``tool_<name>`` selects it), ``label`` (status line),
 ``key`` and ``summary`` (the selecting key's row), and optionally ``brush = True`` (it uses
 radius, falloff and Poisson's ratio, and the ring follows the cursor) and
-``orbit_off_model = False`` (a left press off the model still reaches the tool). A left
+``orbit_off_model = False`` (a left press off the model still reaches the tool) and
+``edits = True`` (it commits strokes: refused while a recovery question is open). A left
 press calls ``press(session, start, hit, modifiers)``; a non-None return value is the
 tool's state for this drag and is passed back to ``drag(session, state, point, modifiers)``,
 ``release(session, state, point, modifiers)``, ``cancel(session, state)`` (Esc, tool change,
@@ -40,9 +41,11 @@ on ``self``. Tools read the session's state and change it only through these cal
   committed ones; ``session.restore()``: draw the committed ones again;
 * ``session.commit(stroke)``: apply one recipe stroke dict (history, journal, picking);
 * ``session.markers_changed()``: pins or mask changed, redraw them;
+* ``session.say(text)``: a status message;
 * read: ``history.points``, ``camera``, ``width``, ``height``, ``radius``, ``falloff``,
   ``poisson[kind]``, ``pins`` (list of (3,) arrays), ``hold`` ((n,) float64 in [0, 1]),
-  ``mirror_plane()``, ``groups``, ``tolerance``, ``pick(x, y)``, ``hover``, ``shown()``.
+  ``mirror_plane()``, ``groups``, ``tolerance``, ``pick(x, y)``, ``hover``, ``shown()``,
+  ``neighbours`` (vertex adjacency, a scipy CSR matrix), ``vertex_normals(indices)``.
 
 Adding a tool
 -------------

@@ -48,6 +48,9 @@ class Tool(Commands):
     orbit_off_model : bool
         True: a left press that misses the model orbits the camera instead of calling
         :meth:`press`.
+    edits : bool
+        True for tools that commit strokes (history and journal): while the session waits
+        for an answer about an unsaved journal, their presses are refused with the question.
     """
 
     name = ""
@@ -56,6 +59,7 @@ class Tool(Commands):
     summary = ""
     brush = False
     orbit_off_model = True
+    edits = False
 
     @classmethod
     def select_binding(cls):

@@ -118,6 +118,7 @@ class BrushTool(Tool):
     """Shared stroke logic of the four brushes; a subclass sets ``name``, ``key``, ``summary``."""
 
     brush = True
+    edits = True
 
     @property
     def label(self):
