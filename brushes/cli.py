@@ -22,6 +22,7 @@ import argparse
 import json
 import os
 import re
+import signal
 import sys
 import time
 import traceback
@@ -513,6 +514,10 @@ def main(argv: list[str] | None = None) -> int:
     except SystemExit as exc:          # --help (0) and usage errors (2)
         return exc.code if isinstance(exc.code, int) else EXIT_BAD_INPUT
     debug = args.debug
+    # A job that a script starts with `&` inherits SIGINT ignored (POSIX shells do this for
+    # background jobs); the command still honours Ctrl-C and the signal that a script sends it.
+    if signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
+        signal.signal(signal.SIGINT, signal.default_int_handler)
     # GNU OpenMP's spinning waits starve the other core on a shared machine (a batch of demo
     # poses ran 4x slower); the setting is read when OpenMP loads, so it is made before any command.
     from brushes.kernels import prefer_sleeping_threads

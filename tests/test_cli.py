@@ -506,8 +506,13 @@ def test_batch_bad_recipe_stops_before_any_work(files, batch_inputs, tmp_path):
     assert not (tmp_path / "o").exists()
 
 
-@pytest.mark.parametrize("jobs", ["1", "2"])
-def test_ctrl_c_exits_130_and_leaves_only_whole_files(files, tmp_path, jobs):
+def _ignore_sigint():
+    # what a non-interactive shell does for a job started with `&` (POSIX): SIGINT ignored
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
+@pytest.mark.parametrize("jobs, started", [("1", "foreground"), ("2", "foreground"), ("2", "background")])
+def test_ctrl_c_exits_130_and_leaves_only_whole_files(files, tmp_path, jobs, started):
     inputs = tmp_path / "in"
     inputs.mkdir()
     names = []
@@ -518,7 +523,8 @@ def test_ctrl_c_exits_130_and_leaves_only_whole_files(files, tmp_path, jobs):
     proc = subprocess.Popen([sys.executable, "-m", "brushes.cli", "batch", str(files["recipe"]),
                              *names, "--out", str(out), "--jobs", jobs, "--quiet"],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
-                            env=env(), start_new_session=True)
+                            env=env(), start_new_session=True,
+                            preexec_fn=_ignore_sigint if started == "background" else None)
     deadline = time.monotonic() + 120
     while time.monotonic() < deadline and not (out.is_dir() and len(list(out.glob("*.obj"))) >= 3):
         time.sleep(0.05)
