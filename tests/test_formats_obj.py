@@ -235,9 +235,12 @@ def test_save_checks_arguments(tmp_path):
         save_mesh(doc, tmp_path / "o.obj", np.zeros((2, 3)))
     with pytest.raises(ValueError, match="vertices"):
         save_mesh(doc, tmp_path / "o.obj", np.full((6, 3), np.nan))
-    with pytest.raises(MeshError, match="PLY"):
-        save_mesh(doc, tmp_path / "o.ply")
-    assert sorted(os.listdir(tmp_path)) == ["m.obj"]
+    assert sorted(os.listdir(tmp_path)) == ["m.obj"]  # bad input writes nothing
+    # another format is a conversion now (issue 11), and it says what it cannot keep
+    written = save_mesh(doc, tmp_path / "o.ply")
+    assert written.converted == ("obj", "ply")
+    assert "material definitions" in written.summary() and "line elements" in written.summary()
+    assert sorted(os.listdir(tmp_path)) == ["m.obj", "o.ply"]
 
 
 def test_obj_comments_weights_and_indented_lines(tmp_path):

@@ -6,10 +6,10 @@ recomputed where the file stores them. :func:`load_mesh` returns a :class:`MeshD
 world-space positions, a fan-triangulated face list (for quality reports and viewing) and what
 it needs to write the file back; :func:`save_mesh` writes it (atomically) with new positions.
 
-One module per format (``obj``, ``ply``, ``stl``, ``off``, ``gltf``), each with ``load`` and
-``save`` and a docstring saying what it keeps; ``document`` holds :class:`MeshDoc`, and
-``_parsing`` the bulk byte and line parsing the text formats share. This module picks the
-format from the file extension.
+One module per format (``obj``, ``ply``, ``stl``, ``off``, ``gltf``, ``usd``), each with
+``load``, ``save`` and ``export`` and a docstring saying what it keeps; ``document`` holds
+:class:`MeshDoc`, ``convert`` the conversions between formats, and ``_parsing`` the bulk byte
+and line parsing the text formats share. This module picks the format from the file extension.
 """
 
 from __future__ import annotations
@@ -20,13 +20,15 @@ import struct
 from brushes import checks
 from brushes.atomic import atomic_write
 
-from . import gltf, obj, off, ply, stl
-from ._parsing import one_line, trimesh_export
-from .document import MeshDoc, MeshError, MeshPart
+from . import gltf, obj, off, ply, stl, usd
+from ._parsing import one_line
+from .convert import Written, convert
+from .document import MeshDoc, MeshError, MeshPart, Polygons
 
-__all__ = ["MeshError", "MeshDoc", "MeshPart", "load_mesh", "save_mesh", "FORMATS"]
+__all__ = ["MeshError", "MeshDoc", "MeshPart", "Polygons", "Written", "load_mesh", "save_mesh",
+           "FORMATS"]
 
-FORMATS = ("obj", "ply", "stl", "off", "glb", "gltf")
+FORMATS = ("obj", "ply", "stl", "off", "glb", "gltf", "usd", "usda", "usdc")
 _MODULES = {"obj": obj, "ply": ply, "stl": stl, "off": off}
 
 
@@ -77,6 +79,8 @@ def load_mesh(path) -> MeshDoc:
     try:
         if fmt in ("glb", "gltf"):
             return gltf.load(path, data, fmt)
+        if fmt in usd.EXTENSIONS:
+            return usd.load(path, data)
         return _MODULES[fmt].load(path, data)
     except MeshError:
         raise
@@ -84,44 +88,43 @@ def load_mesh(path) -> MeshDoc:
         raise MeshError(f"{path}: not a readable {fmt.upper()} file ({one_line(exc)})") from None
 
 
-def save_mesh(doc: MeshDoc, path, vertices=None) -> None:
-    """Write ``doc`` to ``path`` in its source's format, with ``vertices`` as the new positions.
+def save_mesh(doc: MeshDoc, path, vertices=None) -> Written:
+    """Write ``doc`` to ``path`` with ``vertices`` as the new positions; returns a :class:`Written`.
 
-    The file is written atomically (temporary file, then rename). Only positions (and stored
-    normals) change; see each format module's docstring for what it keeps.
+    In the source's own format (``.usd``, ``.usda`` and ``.usdc`` count as one) only positions
+    and stored normals change; see each format module's docstring for what it keeps. In another
+    format the file is converted (:mod:`brushes.formats.convert`): everything the target can
+    hold is kept, and ``Written.dropped`` lists the rest. Files are written atomically
+    (temporary file, then rename).
 
     Parameters
     ----------
     doc : MeshDoc
-        From :func:`load_mesh` (or :meth:`MeshDoc.from_arrays`, written in any format).
+        From :func:`load_mesh` or :meth:`MeshDoc.from_arrays`.
     path : str or os.PathLike
-        Target; its extension must be the source's format.
+        Target; its extension picks the format.
     vertices : (n, 3) float, optional
         New world-space positions in ``doc``'s vertex order (default ``doc.vertices``).
 
     Raises
     ------
     ValueError
-        ``vertices`` of the wrong shape or not finite.
+        ``vertices`` of the wrong shape or not finite (``FieldError`` naming ``vertices``).
     MeshError
-        ``path`` has another format than the source.
+        The target cannot be written (for example a polygon too large for a PLY face list).
     """
     if not isinstance(doc, MeshDoc):
         raise checks.FieldError("doc", f"must be a MeshDoc, got {type(doc).__name__}")
     v = checks.points("vertices", doc.vertices if vertices is None else vertices, rows=len(doc.vertices))
     fmt = _format_of(path)
-    if doc.format is None:
-        if fmt == "obj":
-            files = {os.fspath(path): obj.export_plain(doc, v)}
-        elif fmt == "gltf":
-            files = {os.fspath(path): gltf.export_plain(doc, v)}
-        else:
-            files = {os.fspath(path): trimesh_export(v, doc.faces, fmt)}
-    elif fmt != doc.format:
-        raise MeshError(
-            f"{path}: cannot write a mesh read from {doc.format.upper()} as {fmt.upper()} "
-            f"without losing its structure; save it with the .{doc.format} extension"
-        )
+    same = doc.format is not None and (fmt == doc.format or (fmt in usd.EXTENSIONS
+                                                             and doc.format in usd.EXTENSIONS))
+    written = Written()
+    if not same:
+        files, written = convert(doc, v, path)
+    elif fmt in usd.EXTENSIONS:
+        usd.save(doc, v, path)
+        return written
     elif fmt in ("glb", "gltf"):
         files = gltf.save(doc, v, path, fmt)
     else:
@@ -134,3 +137,4 @@ def save_mesh(doc: MeshDoc, path, vertices=None) -> None:
                 f.write(data)
     with atomic_write(main) as f:
         f.write(files[main])
+    return written

@@ -167,12 +167,3 @@ def trimesh_load(path, data: bytes, kind: str):
     if not isinstance(m, trimesh.Trimesh) or len(m.vertices) == 0:
         raise MeshError(f"{path}: no vertices found; not a {kind.upper()} file or empty")
     return m
-
-
-def trimesh_export(vertices, faces, kind, **kwargs) -> bytes:
-    """A plain mesh (positions and triangles only) through trimesh's exporter for ``kind``."""
-    import trimesh
-
-    m = trimesh.Trimesh(vertices=vertices, faces=faces, process=False)
-    out = m.export(file_type=kind, **kwargs)
-    return out.encode("utf-8") if isinstance(out, str) else out

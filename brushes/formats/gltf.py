@@ -27,9 +27,9 @@ import numpy as np
 from brushes import surface
 
 from ._parsing import one_line
-from .document import MeshDoc, MeshError, MeshPart
+from .document import MeshDoc, MeshError, MeshPart, Polygons
 
-__all__ = ["load", "save", "export_plain"]
+__all__ = ["load", "save", "export", "SOURCE_ATTRIBUTE"]
 
 
 _GLB_MAGIC = 0x46546C67
@@ -37,6 +37,8 @@ _CHUNK_JSON = 0x4E4F534A
 _CHUNK_BIN = 0x004E4942
 _COMPONENT = {5120: "i1", 5121: "u1", 5122: "i2", 5123: "u2", 5125: "u4", 5126: "f4"}
 _NCOMP = {"SCALAR": 1, "VEC2": 2, "VEC3": 3, "VEC4": 4, "MAT2": 4, "MAT3": 9, "MAT4": 16}
+_ARRAY_BUFFER, _ELEMENT_ARRAY_BUFFER = 34962, 34963
+SOURCE_ATTRIBUTE = "_SOURCE_VERTEX"  # pliant's own vertex attribute (glTF 2.0 allows "_" names)
 _REFUSED_EXTENSIONS = ("KHR_draco_mesh_compression", "EXT_meshopt_compression",
                        "KHR_mesh_quantization")
 
@@ -239,16 +241,19 @@ def _gltf_doc(path, gltf, buffers, fmt, folder) -> MeshDoc:
                 f"{path}: mesh {mesh} is instanced by nodes {', '.join(map(str, who))}; "
                 "instanced meshes cannot be posed per instance"
             )
-    all_v, all_f, all_uv = [], [], []
+    all_v, all_f, all_uv, all_n, all_src = [], [], [], [], []
     parts, records = [], []
     owner: dict[int, int] = {}
     start = 0
-    uv_ok = True
+    uv_ok = normals_ok = source_ok = True
+    face_material: list[np.ndarray] = []
+    material_names = _material_names(gltf)
     for node_i, mesh_i, world in visits:
         if abs(np.linalg.det(world[:3, :3])) < 1e-300:
             raise MeshError(f"{path}: node {node_i} has a singular transform (zero scale)")
         mesh = gltf["meshes"][mesh_i]
         by_acc: dict[int, _GltfPart] = {}
+        materials_of: dict[int, list] = {}
         for prim in mesh.get("primitives", []):
             ai = prim.get("attributes", {}).get("POSITION")
             if ai is None:
@@ -268,22 +273,27 @@ def _gltf_doc(path, gltf, buffers, fmt, folder) -> MeshDoc:
                 part = _GltfPart(ai, nrm, world, start, start + len(pos), faces)
                 by_acc[ai] = part
                 all_v.append(w)
-                tc = prim["attributes"].get("TEXCOORD_0")
-                if tc is not None and uv_ok:
-                    t, _ = _accessor_array(gltf, buffers, tc, path)
-                    if t.dtype == np.float32 and t.shape[1] == 2:
-                        all_uv.append(t.astype(np.float64))
-                    else:
-                        uv_ok = False
+                uv_ok = uv_ok and _vertex_attribute(gltf, buffers, prim, "TEXCOORD_0", 2, path,
+                                                    all_uv)
+                if normals_ok and _vertex_attribute(gltf, buffers, prim, "NORMAL", 3, path, all_n):
+                    inv_t = np.linalg.inv(world[:3, :3]).T  # normals map by the inverse transpose
+                    n = all_n[-1] @ inv_t.T
+                    length = np.linalg.norm(n, axis=1, keepdims=True)
+                    all_n[-1] = np.divide(n, length, out=np.zeros_like(n), where=length > 0)
                 else:
-                    uv_ok = False
+                    normals_ok = False
+                source_ok = source_ok and _vertex_attribute(gltf, buffers, prim, SOURCE_ATTRIBUTE,
+                                                            1, path, all_src)
                 start += len(pos)
             else:
                 part.faces = np.concatenate([part.faces, faces])
                 if part.normal != nrm:
                     part.normal = None  # primitives disagree on the normal accessor: keep as is
-        for part in by_acc.values():
+            materials_of.setdefault(ai, []).append(
+                np.full(len(faces), prim.get("material", -1), np.int64))
+        for ai, part in by_acc.items():
             all_f.append(part.faces + part.start)
+            face_material.extend(materials_of[ai])
             records.append(part)
             name = gltf["nodes"][node_i].get("name") or mesh.get("name") or f"node{node_i}"
             parts.append(MeshPart(name, part.start, part.stop, node_i, mesh_i))
@@ -294,11 +304,80 @@ def _gltf_doc(path, gltf, buffers, fmt, folder) -> MeshDoc:
     uv = np.concatenate(all_uv) if uv_ok and all_uv else None
     normals = "recomputed" if any(p.normal is not None for p in records) else "absent"
     source = _GltfSource(gltf, buffers, fmt == "glb", folder, records)
+    polys = Polygons.from_triangles(faces)
+    if uv is not None:
+        polys.uv, polys.uv_index = uv, polys.corners
+    if normals_ok and all_n:
+        polys.normals, polys.normal_index = np.concatenate(all_n), polys.corners
+    used = np.concatenate(face_material) if face_material else np.zeros(0, np.int64)
+    if np.any(used >= 0):
+        present = sorted(set(used[used >= 0].tolist()))
+        polys.materials = tuple(material_names[i] for i in present)
+        remap = np.full(max(present) + 2, -1, np.int64)
+        remap[present] = np.arange(len(present))
+        polys.material_index = remap[used]
+    tri_start = np.cumsum([0] + [len(f) for f in all_f])
+    for k, part in enumerate(parts):
+        members = np.arange(tri_start[k], tri_start[k + 1], dtype=np.int64)
+        prev = polys.groups.get(part.name)
+        polys.groups[part.name] = members if prev is None else np.concatenate([prev, members])
     groups = {}
     for part in parts:
         groups.setdefault(part.name, []).append(np.arange(part.start, part.stop, dtype=np.int64))
     groups = {k: np.concatenate(v) for k, v in groups.items()}
-    return MeshDoc(vertices, faces, os.fspath(path), fmt, uv, normals, tuple(parts), source, groups)
+    doc = MeshDoc(vertices, faces, os.fspath(path), fmt, uv, normals, tuple(parts), source, groups,
+                  polys, _unconverted(gltf))
+    if source_ok and all_src:
+        doc.source_vertex = np.concatenate(all_src)[:, 0].astype(np.int64)
+    return doc
+
+
+def _material_names(gltf):
+    """A unique name per material (its own name, else ``material<i>``)."""
+    names, seen = [], set()
+    for i, m in enumerate(gltf.get("materials", [])):
+        name = m.get("name") or f"material{i}"
+        while name in seen:
+            name = f"{name}_{i}"
+        seen.add(name)
+        names.append(name)
+    return names
+
+
+def _vertex_attribute(gltf, buffers, prim, semantic, width, path, out):
+    """Append the primitive's ``semantic`` attribute as (count, width) float64; False if absent."""
+    index = prim.get("attributes", {}).get(semantic)
+    if index is None:
+        return False
+    values, acc = _accessor_array(gltf, buffers, index, path)
+    if values.shape[1] != width or (values.dtype != np.float32 and semantic != SOURCE_ATTRIBUTE):
+        return False
+    out.append(values.astype(np.float64))
+    return True
+
+
+def _unconverted(gltf):
+    """What a glTF holds that no conversion carries, as labels for the dropped-list."""
+    out = []
+    if gltf.get("textures") or gltf.get("images"):
+        out.append("textures and images")
+    if any(set(m) - {"name"} for m in gltf.get("materials", [])):
+        out.append("material properties (names are kept)")
+    for key, label in (("animations", "animations"), ("skins", "skins"), ("cameras", "cameras")):
+        if gltf.get(key):
+            out.append(label)
+    attrs = {a for m in gltf.get("meshes", []) for p in m.get("primitives", [])
+             for a in p.get("attributes", {})}
+    if any(a.startswith("COLOR_") for a in attrs):
+        out.append("vertex colours")
+    if any(a.startswith("TEXCOORD_") and a != "TEXCOORD_0" for a in attrs):
+        out.append("texture coordinate sets after the first")
+    if any(a.startswith(("JOINTS_", "WEIGHTS_")) for a in attrs):
+        out.append("skin weights")
+    if any(p.get("targets") for m in gltf.get("meshes", []) for p in m.get("primitives", [])):
+        out.append("morph targets")
+    return out
+
 
 
 def _float_list(a):
@@ -377,11 +456,104 @@ def save(doc: MeshDoc, vertices, path, fmt) -> dict:
     return files
 
 
-def export_plain(doc: MeshDoc, vertices) -> bytes:
-    """A ``.gltf`` with embedded buffers for a document made from arrays (through trimesh)."""
-    import trimesh
-    from trimesh.exchange.gltf import export_gltf
+def export(vertices, polys: Polygons, *, glb=True, source_vertex=None, name="mesh"):
+    """A new glTF 2.0 (GLB, or ``.gltf`` with an embedded buffer) from per-vertex data.
 
-    m = trimesh.Trimesh(vertices=vertices, faces=doc.faces, process=False)
-    files = export_gltf(trimesh.Scene(m), embed_buffers=True)
-    return files["model.gltf"]
+    Polygons are fan-triangulated. Each group becomes one node with one mesh of its name (a
+    polygon in several groups goes to the first; polygons in none to a node called ``name``),
+    holding its own vertices; each material is one primitive with a material of that name.
+    ``source_vertex`` (n,) int, when given, is written as the ``_SOURCE_VERTEX`` attribute.
+
+    vertices : (n, 3) float; polys : :class:`Polygons` whose ``uv_index``/``normal_index``
+    equal ``corners``. Returns (bytes, number of vertices written).
+    """
+    vertices = np.asarray(vertices, np.float64)
+    written = 0
+    tri_poly = polys.triangle_polygon
+    tris = polys.corners[polys.fan_triangles()] if len(polys.corners) else np.zeros((0, 3), np.int64)
+    owner = np.full(len(polys.counts), -1, np.int64)
+    names = list(polys.groups)
+    for i, g in enumerate(names):
+        members = np.asarray(polys.groups[g], np.int64)
+        owner[members[owner[members] < 0]] = i
+    tri_owner = owner[tri_poly]
+    mat = (polys.material_index[tri_poly] if polys.material_index is not None
+           else np.full(len(tris), -1, np.int64))
+    blobs, views, accessors = [], [], []
+    offset = 0
+
+    def add(arr, target, kind, ctype, bounds=False):
+        nonlocal offset
+        raw = np.ascontiguousarray(arr).tobytes()
+        view = {"buffer": 0, "byteOffset": offset, "byteLength": len(raw)}
+        if target is not None:
+            view["target"] = target
+        views.append(view)
+        acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)),
+               "type": kind}
+        if bounds:
+            acc["min"] = [float(x) for x in arr.min(axis=0)]
+            acc["max"] = [float(x) for x in arr.max(axis=0)]
+        accessors.append(acc)
+        raw += b"\0" * (-len(raw) % 4)
+        blobs.append(raw)
+        offset += len(raw)
+        return len(accessors) - 1
+
+    nodes, meshes = [], []
+    order = [i for i in range(len(names)) if np.any(tri_owner == i)]
+    if np.any(tri_owner < 0):
+        order.append(-1)
+    for part in order:
+        sel = np.flatnonzero(tri_owner == part)
+        used, local = np.unique(tris[sel], return_inverse=True)
+        local = local.reshape(-1, 3)
+        pos = vertices[used].astype(np.float32)
+        written += len(used)
+        attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", 5126, True)}
+        if polys.normals is not None:
+            n = np.asarray(polys.normals, np.float64)[used]
+            length = np.linalg.norm(n, axis=1, keepdims=True)
+            n = np.divide(n, length, out=np.tile([0.0, 0.0, 1.0], (len(n), 1)), where=length > 0)
+            attributes["NORMAL"] = add(n.astype(np.float32), _ARRAY_BUFFER, "VEC3", 5126)
+        if polys.uv is not None:
+            attributes["TEXCOORD_0"] = add(np.asarray(polys.uv, np.float32)[used], _ARRAY_BUFFER,
+                                           "VEC2", 5126)
+        if source_vertex is not None:
+            attributes[SOURCE_ATTRIBUTE] = add(np.asarray(source_vertex, np.float32)[used],
+                                               _ARRAY_BUFFER, "SCALAR", 5126)
+        primitives = []
+        for m in sorted(set(mat[sel].tolist())):
+            idx = local[mat[sel] == m].reshape(-1)
+            ctype, dt = (5123, np.uint16) if len(used) <= 65535 else (5125, np.uint32)
+            prim = {"attributes": dict(attributes),
+                    "indices": add(idx.astype(dt), _ELEMENT_ARRAY_BUFFER, "SCALAR", ctype),
+                    "mode": 4}
+            if m >= 0:
+                prim["material"] = int(m)
+            primitives.append(prim)
+        label = names[part] if part >= 0 else name
+        meshes.append({"name": label, "primitives": primitives})
+        nodes.append({"name": label, "mesh": len(meshes) - 1})
+    binary = b"".join(blobs)
+    gltf = {"asset": {"version": "2.0", "generator": "pliant"}, "scene": 0,
+            "scenes": [{"nodes": list(range(len(nodes)))}], "nodes": nodes, "meshes": meshes,
+            "accessors": accessors, "bufferViews": views,
+            "buffers": [{"byteLength": len(binary)}]}
+    if polys.materials:
+        gltf["materials"] = [{"name": m} for m in polys.materials]
+    return _container(gltf, binary, glb=glb), written
+
+
+def _container(gltf, binary, *, glb):
+    """GLB bytes, or glTF JSON with the buffer as a base64 data URI."""
+    if not glb:
+        gltf["buffers"][0]["uri"] = ("data:application/octet-stream;base64,"
+                                     + base64.b64encode(binary).decode("ascii"))
+        return (json.dumps(gltf, indent=1) + "\n").encode("utf-8")
+    jbytes = json.dumps(gltf, separators=(",", ":")).encode("utf-8")
+    jbytes += b" " * (-len(jbytes) % 4)
+    binary += b"\0" * (-len(binary) % 4)
+    chunks = (struct.pack("<II", len(jbytes), _CHUNK_JSON) + jbytes
+              + struct.pack("<II", len(binary), _CHUNK_BIN) + binary)
+    return struct.pack("<III", _GLB_MAGIC, 2, 12 + len(chunks)) + chunks

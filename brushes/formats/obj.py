@@ -23,9 +23,9 @@ import numpy as np
 from brushes import surface
 
 from ._parsing import fan, gather, parse_numbers, run_splice, split_lines, tokens
-from .document import MeshDoc, MeshError, MeshPart
+from .document import MeshDoc, MeshError, MeshPart, Polygons
 
-__all__ = ["load", "save", "export_plain"]
+__all__ = ["load", "save", "export"]
 
 
 @dataclass
@@ -130,6 +130,7 @@ def load(path, data: bytes) -> MeshDoc:
     vn_count = int(is_vn.sum())
     source = _ObjSource(data, starts[vidx], ends[vidx], tail_index, tails)
     normals = "absent" if vn_count == 0 else "kept"
+    unconverted = []
     if len(fidx):
         s, e = kw[fidx] + 1, ends[fidx]
         blob, off = gather(buf, s, e, fidx)
@@ -170,6 +171,7 @@ def load(path, data: bytes) -> MeshDoc:
         corners = _resolve(v_ref, v_before, nv, path, "vertex")
         tri = fan(tok.counts, corners)
         faces = corners[tri]
+        polys = Polygons(tok.counts.astype(np.int64), corners.astype(np.int64))
 
         nvt = int(is_vt.sum())
         if nvt:
@@ -183,59 +185,96 @@ def load(path, data: bytes) -> MeshDoc:
                 cols[:, 0] = vtvals[off1]
                 two = c1 == 2
                 cols[two, 1] = vtvals[off1[two] + 1]
+                polys.uv, polys.uv_index = cols, t_corner
                 cuv = cols[t_corner]
                 per_vertex = np.zeros((nv, 2))
                 per_vertex[corners] = cuv
                 if np.array_equal(per_vertex[corners], cuv):
                     uv = per_vertex
+            elif pres1.any():
+                unconverted.append("texture coordinates (only some face corners have them)")
         if vn_count:
             pres2, n_ref, n_before = component(2, is_vn)
             n_corner = np.full(ncorner, -1, np.int64)
             n_corner[pres2] = _resolve(n_ref, n_before, vn_count, path, "normal")
             used = n_corner >= 0
+            nidx, _, _, ntok, nvals = _obj_floats(buf, kw, ends, is_vn, 2, path, "vn", 3)
+            if used.all():
+                polys.normals, polys.normal_index = _first_columns(nvals, ntok.counts, 3), n_corner
+            elif used.any():
+                unconverted.append("normals (only some face corners have them)")
             owner = np.full(vn_count, -1, np.int64)
             owner[n_corner[used]] = corners[used]
             if np.array_equal(owner[n_corner[used]], corners[used]):
                 tri_vn = n_corner[tri]
-                nidx, _, _, ntok, nvals = _obj_floats(buf, kw, ends, is_vn, 2, path, "vn", 3)
                 source.vn_starts = starts[nidx]
                 source.vn_ends = ends[nidx]
                 source.vn_old = _first_columns(nvals, ntok.counts, 3)
                 source.tri_vn = tri_vn
                 normals = "recomputed"
-    groups = {}
-    if len(fidx):
-        groups = _obj_groups(data, buf, kw, starts, ends, fidx, corners, corner_line)
+        polys.groups = _face_names(data, buf, kw, ends, fidx, b"g", split=True)
+        materials = _face_names(data, buf, kw, ends, fidx, b"usemtl", split=False)
+        if materials:
+            polys.materials = tuple(materials)
+            polys.material_index = np.full(len(fidx), -1, np.int64)
+            for j, members in enumerate(materials.values()):
+                polys.material_index[members] = j
+    else:
+        polys = Polygons(np.zeros(0, np.int64), np.zeros(0, np.int64))
+    unconverted.extend(_other_statements(data, buf, kw, ends, is_v, is_vt, is_vn, is_f, vtok))
     if len(faces) == 0:
         faces = np.zeros((0, 3), np.int64)
     name = os.path.splitext(os.path.basename(os.fspath(path)))[0]
     return MeshDoc(
         vertices, faces.astype(np.int64), os.fspath(path), "obj", uv, normals,
-        (MeshPart(name, 0, nv),), source, groups,
+        (MeshPart(name, 0, nv),), source, polys.vertex_groups(), polys, tuple(unconverted),
     )
 
 
-def _obj_groups(data, buf, kw, starts, ends, fidx, corners, corner_line):
-    """{group name: vertex indices} from the ``g`` lines: each face belongs to the groups named
-    by the last ``g`` line before it (a ``g`` line may name several groups)."""
+def _keyword_lines(buf, kw, ends, word):
+    """Line numbers whose keyword is ``word`` (bytes), followed by a blank or the line end."""
+    k = len(word)
     length = ends - kw
-    b1 = buf[np.minimum(kw + 1, len(buf) - 1)]
-    is_g = (buf[kw] == 103) & ((length == 1) | ((length > 1) & ((b1 == 32) | (b1 == 9))))
-    gidx = np.flatnonzero(is_g)
-    if not len(gidx):
+    hit = length >= k
+    for i, ch in enumerate(word):
+        hit &= buf[np.minimum(kw + i, len(buf) - 1)] == ch
+    after = buf[np.minimum(kw + k, len(buf) - 1)]
+    return np.flatnonzero(hit & ((length == k) | ((after == 32) | (after == 9))))
+
+
+def _face_names(data, buf, kw, ends, fidx, word, *, split):
+    """{name: (q,) polygon indices} from ``g`` or ``usemtl`` lines: each face takes the name(s)
+    of the last such line before it (a ``g`` line may name several groups), in order of first
+    use."""
+    lines = _keyword_lines(buf, kw, ends, word)
+    if not len(lines) or not len(fidx):
         return {}
-    owner = np.searchsorted(gidx, fidx, side="right") - 1  # per face line: which g line, -1 none
-    corner_owner = owner[corner_line]
-    groups = {}
-    for j, line in enumerate(gidx.tolist()):
-        names = data[int(kw[line]) + 1:int(ends[line])].decode("utf-8", "replace").split()
-        sel = corners[corner_owner == j]
-        if not len(sel):
+    owner = np.searchsorted(lines, fidx, side="right") - 1  # per face: which line, -1 none
+    out = {}
+    for j, line in enumerate(lines.tolist()):
+        text = data[int(kw[line]) + len(word):int(ends[line])].decode("utf-8", "replace")
+        text = text.split("#", 1)[0]
+        names = text.split() if split else ([text.strip()] if text.strip() else [])
+        members = np.flatnonzero(owner == j)
+        if not len(members):
             continue
         for name in names:
-            prev = groups.get(name)
-            groups[name] = sel if prev is None else np.concatenate([prev, sel])
-    return {k: np.unique(v).astype(np.int64) for k, v in groups.items()}
+            prev = out.get(name)
+            out[name] = members if prev is None else np.concatenate([prev, members])
+    return {k: np.unique(v).astype(np.int64) for k, v in out.items()}
+
+
+def _other_statements(data, buf, kw, ends, is_v, is_vt, is_vn, is_f, vtok):
+    """What an OBJ holds that no conversion carries, as labels for the dropped-list."""
+    out = []
+    if len(vtok.counts) and np.any(vtok.counts >= 6):
+        out.append("vertex colours")
+    for word, label in ((b"mtllib", "material definitions (the .mtl file; names are kept)"),
+                        (b"l", "line elements"), (b"p", "point elements"),
+                        (b"s", "smoothing groups"), (b"o", "object names")):
+        if len(_keyword_lines(buf, kw, ends, word)):
+            out.append(label)
+    return out
 
 
 def _resolve(ref, before, count, path, what):
@@ -297,14 +336,49 @@ def save(doc: MeshDoc, vertices) -> bytes:
     return run_splice(src.data, starts, ends, key, render)
 
 
-def export_plain(doc: MeshDoc, vertices) -> bytes:
-    """OBJ text for a document made from arrays: v, vt (if uv), f."""
-    parts = ["# written by pliant\n"]
-    parts.append(("v %r %r %r\n" * len(vertices)) % tuple(vertices.ravel().tolist()))
-    f1 = doc.faces + 1
-    if doc.uv is not None:
-        parts.append(("vt %r %r\n" * len(doc.uv)) % tuple(doc.uv.ravel().tolist()))
-        parts.append(("f %d/%d %d/%d %d/%d\n" * len(f1)) % tuple(np.repeat(f1.ravel(), 2).tolist()))
+def export(vertices, polys: Polygons) -> bytes:
+    """A new OBJ from polygons: ``v``, ``vt``, ``vn`` and ``f v/vt/vn`` lines, a ``g`` line where
+    the polygons' groups change and a ``usemtl`` line where their material changes.
+
+    vertices : (n, 3) float; polys : :class:`Polygons` (its indices are written as they are, so
+    texture seams need no split vertices).
+    """
+    vertices = np.asarray(vertices, np.float64)
+    out = ["# written by pliant\n"]
+    out.append(("v %r %r %r\n" * len(vertices)) % tuple(vertices.ravel().tolist()))
+    if polys.uv is not None:
+        out.append(("vt %r %r\n" * len(polys.uv)) % tuple(np.asarray(polys.uv, float).ravel().tolist()))
+    if polys.normals is not None:
+        out.append(("vn %.9g %.9g %.9g\n" * len(polys.normals))
+                   % tuple(np.asarray(polys.normals, float).ravel().tolist()))
+    cols = [polys.corners + 1]
+    if polys.uv is not None:
+        cols.append(polys.uv_index + 1)
+    if polys.normals is not None:
+        cols.append(polys.normal_index + 1)
+    if len(cols) == 1:
+        corner = [str(v) for v in cols[0].tolist()]
+    elif len(cols) == 2 and polys.uv is not None:
+        corner = [f"{a}/{b}" for a, b in zip(cols[0].tolist(), cols[1].tolist())]
+    elif len(cols) == 2:
+        corner = [f"{a}//{b}" for a, b in zip(cols[0].tolist(), cols[1].tolist())]
     else:
-        parts.append(("f %d %d %d\n" * len(f1)) % tuple(f1.ravel().tolist()))
-    return "".join(parts).encode("ascii")
+        corner = [f"{a}/{b}/{c}" for a, b, c in zip(*(c.tolist() for c in cols))]
+    member = [[] for _ in range(len(polys.counts))]
+    for name, polys_in in polys.groups.items():
+        for p in np.asarray(polys_in).tolist():
+            member[p].append(name)
+    mats = polys.material_index.tolist() if polys.material_index is not None else None
+    last_group, last_mat = (), -1
+    start = 0
+    for i, k in enumerate(polys.counts.tolist()):
+        names = tuple(member[i])
+        if names != last_group:
+            out.append("g " + " ".join(names) + "\n" if names else "g\n")
+            last_group = names
+        if mats is not None and mats[i] != last_mat and mats[i] >= 0:
+            out.append(f"usemtl {polys.materials[mats[i]]}\n")
+            last_mat = mats[i]
+        out.append("f " + " ".join(corner[start:start + k]) + "\n")
+        start += k
+    return "".join(out).encode("utf-8")

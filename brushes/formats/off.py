@@ -12,9 +12,9 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._parsing import fan, run_splice, trimesh_load
-from .document import MeshDoc, MeshError, MeshPart
+from .document import MeshDoc, MeshError, MeshPart, Polygons
 
-__all__ = ["load", "save"]
+__all__ = ["load", "save", "export"]
 
 
 @dataclass
@@ -79,8 +79,10 @@ def load(path, data: bytes) -> MeshDoc:
     faces = corners[fan(counts, corners)] if len(corners) else np.zeros((0, 3), np.int64)
     source = _OffSource(data, np.asarray(starts, np.int64), np.asarray(ends, np.int64), tails)
     name = os.path.splitext(os.path.basename(os.fspath(path)))[0]
+    polys = Polygons(np.asarray(counts, np.int64), corners)
+    unconverted = ("vertex colours",) if any(t.split("#")[0].strip() for t in tails) else ()
     return MeshDoc(vertices, faces, os.fspath(path), "off", None, "absent",
-                   (MeshPart(name, 0, n),), source)
+                   (MeshPart(name, 0, n),), source, polygons=polys, unconverted=unconverted)
 
 
 def save(doc: MeshDoc, vertices) -> bytes:
@@ -94,3 +96,17 @@ def save(doc: MeshDoc, vertices) -> bytes:
         return text.encode("latin-1")
 
     return run_splice(src.data, src.starts, src.ends, np.zeros(len(src.starts), np.int64), render)
+
+
+def export(vertices, polys: Polygons) -> bytes:
+    """A new OFF: positions and polygons (OFF holds nothing else pliant carries)."""
+    vertices = np.asarray(vertices, np.float64)
+    counts = polys.counts.tolist()
+    corners = polys.corners.tolist()
+    lines = ["OFF", f"{len(vertices)} {len(counts)} 0"]
+    lines += ["%r %r %r" % tuple(row) for row in vertices.tolist()]
+    start = 0
+    for k in counts:
+        lines.append(" ".join([str(k)] + [str(v) for v in corners[start:start + k]]))
+        start += k
+    return ("\n".join(lines) + "\n").encode("ascii")

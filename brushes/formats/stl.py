@@ -19,9 +19,9 @@ import numpy as np
 from brushes import surface
 
 from ._parsing import trimesh_load
-from .document import MeshDoc, MeshError, MeshPart
+from .document import MeshDoc, MeshError, MeshPart, Polygons
 
-__all__ = ["load", "save"]
+__all__ = ["load", "save", "export"]
 
 
 @dataclass
@@ -61,7 +61,8 @@ def load(path, data: bytes) -> MeshDoc:
         sname = first_line[5:].strip() if first_line.lower().startswith("solid") else ""
     name = os.path.splitext(os.path.basename(os.fspath(path)))[0]
     return MeshDoc(vertices, faces, os.fspath(path), "stl", None, "absent",
-                   (MeshPart(name, 0, len(vertices)),), _StlSource(binary, header, attributes, sname))
+                   (MeshPart(name, 0, len(vertices)),), _StlSource(binary, header, attributes, sname),
+                   polygons=Polygons.from_triangles(faces))
 
 
 def _facet_normals(vertices, faces):
@@ -88,3 +89,15 @@ def save(doc: MeshDoc, vertices) -> bytes:
              "  vertex %r %r %r\n  vertex %r %r %r\n endloop\nendfacet\n")
     body = (facet * m) % tuple(block.ravel().tolist())
     return f"solid {src.name}\n{body}endsolid {src.name}\n".encode("latin-1")
+
+
+def export(vertices, polys: Polygons) -> bytes:
+    """A new binary STL: one facet per fan triangle of the polygons, with its unit normal."""
+    faces = polys.corners[polys.fan_triangles()] if len(polys.corners) else np.zeros((0, 3), np.int64)
+    vertices = np.asarray(vertices, np.float64)
+    m = len(faces)
+    rec = np.zeros(m, dtype=np.dtype([("n", "<f4", (3,)), ("v", "<f4", (3, 3)), ("a", "<u2")]))
+    rec["n"] = _facet_normals(vertices, faces)
+    rec["v"] = vertices[faces]
+    header = b"pliant binary STL".ljust(80, b" ")
+    return header + struct.pack("<I", m) + rec.tobytes()
