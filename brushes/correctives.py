@@ -22,8 +22,14 @@ Two outputs, chosen by the file extension given to :func:`write_delta`:
     A glTF 2.0 file holding the rest mesh (POSITION, triangle indices and TEXCOORD_0 when the
     rest has per-vertex texture coordinates) with the posed shape as one morph target: target
     POSITION holds the offsets, ``mesh.extras.targetNames`` names it and ``mesh.weights`` gives
-    its default weight. Every POSITION accessor has ``min``/``max``. A ``.gltf`` embeds its
-    buffer as a base64 data URI, so the output is a single file written atomically.
+    its default weight. The target is stored sparse (only the moved vertices' indices and
+    offsets) when that is smaller than one offset per vertex, and as an accessor with no data
+    (all zeros, as glTF 2.0 defines it) when nothing moved. Every POSITION accessor has
+    ``min``/``max``. A ``.gltf`` embeds its buffer as a base64 data URI, so the output is a
+    single file written atomically.
+``.usd`` / ``.usda`` / ``.usdc`` (OpenUSD)
+    UsdSkel ``BlendShape`` prims bound to the rest meshes, see
+    :func:`brushes.formats.usd.write_blend_shapes`.
 """
 
 from __future__ import annotations
@@ -65,7 +71,7 @@ def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective"
     Parameters
     ----------
     path : str or os.PathLike
-        ``.npz``, ``.glb`` or ``.gltf``.
+        ``.npz``, ``.glb``, ``.gltf``, ``.usd``, ``.usda`` or ``.usdc``.
     rest : MeshDoc
         The rest mesh (its ``vertices``, ``faces`` and ``uv`` are used).
     posed_vertices : (n, 3) float
@@ -103,8 +109,14 @@ def write_delta(path, rest: MeshDoc, posed_vertices, *, name: str = "corrective"
         data = buf.getvalue()
     elif ext in (".glb", ".gltf"):
         data = _gltf_bytes(r, rest.faces, rest.uv, deltas, name, weight, glb=ext == ".glb")
+    elif ext in (".usd", ".usda", ".usdc"):
+        from .formats import usd
+
+        usd.write_blend_shapes(path, rest, p, name=name, weight=weight)
+        return
     else:
-        raise checks.FieldError("path", f"extension must be .npz, .glb or .gltf, got {ext or 'none'!r}")
+        raise checks.FieldError("path", "extension must be .npz, .glb, .gltf, .usd, .usda or "
+                                f".usdc, got {ext or 'none'!r}")
     with atomic_write(path) as f:
         f.write(data)
 
@@ -175,7 +187,10 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
     def add(arr, target, kind, ctype, bounds):
         nonlocal offset
         raw = np.ascontiguousarray(arr).tobytes()
-        views.append({"buffer": 0, "byteOffset": offset, "byteLength": len(raw), "target": target})
+        view = {"buffer": 0, "byteOffset": offset, "byteLength": len(raw)}
+        if target is not None:
+            view["target"] = target
+        views.append(view)
         acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)),
                "type": kind}
         if bounds:  # exact float32 bounds, as the glTF 2.0 spec requires for POSITION
@@ -190,7 +205,7 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
     attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
     if uv is not None:
         attributes["TEXCOORD_0"] = add(np.asarray(uv, np.float32), _ARRAY_BUFFER, "VEC2", _FLOAT, False)
-    target = {"POSITION": add(deltas, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
+    target = {"POSITION": _target_accessor(deltas, add, accessors, views, blobs)}
     primitive = {"attributes": attributes, "targets": [target]}
     faces = np.asarray(faces, np.int64).reshape(-1, 3)
     if len(faces):
@@ -225,3 +240,34 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
     chunks = (struct.pack("<II", len(jbytes), 0x4E4F534A) + jbytes
               + struct.pack("<II", len(binary), 0x004E4942) + binary)
     return struct.pack("<III", 0x46546C67, 2, 12 + len(chunks)) + chunks
+
+
+def _target_accessor(deltas, add, accessors, views, blobs):
+    """The morph target's POSITION accessor: dense, sparse (moved vertices only) when that is
+    smaller, or no data at all (zeros) when nothing moved. Returns its index."""
+    n = len(deltas)
+    moved = np.flatnonzero(np.any(deltas != 0, axis=1))
+    k = len(moved)
+    index_size = 2 if n <= 65535 else 4
+    if k == 0:
+        accessors.append({"componentType": _FLOAT, "count": n, "type": "VEC3",
+                          "min": [0.0, 0.0, 0.0], "max": [0.0, 0.0, 0.0]})
+        return len(accessors) - 1
+    if k * (index_size + 12) >= n * 12:
+        return add(deltas, _ARRAY_BUFFER, "VEC3", _FLOAT, True)
+    values = deltas[moved]
+    idx = moved.astype(np.uint16 if index_size == 2 else np.uint32)
+    i_acc = add(idx, None, "SCALAR", _UINT16 if index_size == 2 else _UINT32, False)
+    v_acc = add(values, None, "VEC3", _FLOAT, False)
+    # the two helper accessors become the sparse parts of one accessor (their views stay)
+    i_view, v_view = accessors[i_acc]["bufferView"], accessors[v_acc]["bufferView"]
+    del accessors[v_acc], accessors[i_acc]
+    lo = np.minimum(values.min(axis=0), 0.0) if k < n else values.min(axis=0)
+    hi = np.maximum(values.max(axis=0), 0.0) if k < n else values.max(axis=0)
+    accessors.append({"componentType": _FLOAT, "count": n, "type": "VEC3",
+                      "min": [float(x) for x in lo], "max": [float(x) for x in hi],
+                      "sparse": {"count": k,
+                                 "indices": {"bufferView": i_view,
+                                             "componentType": _UINT16 if index_size == 2 else _UINT32},
+                                 "values": {"bufferView": v_view}}})
+    return len(accessors) - 1

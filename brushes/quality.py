@@ -28,7 +28,9 @@ VOLUME_ZERO_TOL = 1e-12
 # Keys of the report, in the order `format_quality` shows them.
 REPORT_KEYS = (
     "vertex_count",
-    "face_count",
+    "position_count",
+    "polygon_count",
+    "triangle_count",
     "edge_count",
     "closed",
     "boundary_edges",
@@ -137,6 +139,18 @@ def _edges(faces, n):
     return edges, boundary, nonmanifold, closed
 
 
+def _polygon_count(polygons, m):
+    counts = np.asarray(polygons)
+    if counts.ndim != 1 or (counts.size and not np.issubdtype(counts.dtype, np.integer)):
+        raise ValueError(f"polygons: must be a 1-D array of corner counts, got shape {counts.shape}")
+    if counts.size and counts.min() < 3:
+        raise ValueError("polygons: every polygon needs at least 3 corners")
+    if int(np.sum(counts - 2)) != m:
+        raise ValueError(f"polygons: {len(counts)} polygons make {int(np.sum(counts - 2))} "
+                         f"triangles, but faces has {m}")
+    return len(counts)
+
+
 def _ratio_range(num, den, keep):
     """Min and max of num/den over entries where keep is True, as floats, or (None, None)."""
     if not keep.any():
@@ -149,7 +163,7 @@ def _plural(count, word):
     return f"{count} {word}" if count == 1 else f"{count} {word}s"
 
 
-def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0):
+def quality(rest, posed, faces, *, polygons=None, volume_tolerance=0.01, stretch_tolerance=4.0):
     """Measure how a posed mesh differs from its rest shape.
 
     Parameters
@@ -158,6 +172,9 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
         Vertex positions before and after the edit, the same n. Must be finite.
     faces : (m, 3) int
         Triangles as vertex indices, counter-clockwise seen from outside; m >= 1.
+    polygons : (p,) int, keyword-only, optional
+        Corners of each polygon the triangles were cut from (fan order, as the mesh formats
+        give them), for ``polygon_count``; default: every triangle is a polygon.
     volume_tolerance : float, keyword-only
         A relative volume change larger than this (default 0.01, i.e. 1%) goes in the verdict.
     stretch_tolerance : float, keyword-only
@@ -168,16 +185,21 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
     -------
     dict of plain Python values (float, int, bool, None, lists), ready for `json.dumps`:
 
-    - ``vertex_count``, ``face_count``, ``edge_count`` (unique undirected edges).
-    - ``closed``: every undirected edge is shared by exactly two faces that traverse it in
+    - ``vertex_count``; ``position_count``: vertices left after welding those with equal rest
+      and equal posed positions. Files split vertices at texture seams and normal creases; the
+      topology figures below use the welded vertices, so such a split does not make a closed
+      surface look open.
+    - ``polygon_count``, ``triangle_count`` (m), ``edge_count`` (unique undirected edges between
+      welded vertices).
+    - ``closed``: every undirected edge is shared by exactly two triangles that traverse it in
       opposite directions (a consistently oriented, watertight surface);
-      ``boundary_edges`` (used by one face) and ``nonmanifold_edges`` (used by more than two).
+      ``boundary_edges`` (used by one triangle) and ``nonmanifold_edges`` (by more than two).
     - ``volume_rest``, ``volume_posed``: signed enclosed volume by the divergence theorem,
       V = (1/6) sum_f p0 . ((p1 - p0) x (p2 - p0)); None when the mesh is not closed.
       ``volume_change`` = (V_posed - V_rest) / V_rest, signed (0.021 means 2.1% larger);
       None when not closed or when the rest volume is zero.
     - ``flipped_faces``: faces whose normal turned by more than 90 degrees (dot of the rest and
-      posed face normals < 0); ``flipped_fraction`` = flipped_faces / face_count.
+      posed face normals < 0); ``flipped_fraction`` = flipped_faces / triangle_count.
     - ``max_displacement``, ``max_displacement_vertex`` (its index), ``mean_displacement``: of
       |posed - rest| over all vertices; ``moved_vertices``: count with displacement above
       1e-9 times the rest bounding-box diagonal.
@@ -190,7 +212,7 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
     - ``bbox_rest``, ``bbox_posed``: [[xmin, ymin, zmin], [xmax, ymax, zmax]];
       ``bbox_diagonal``: length of the rest bounding-box diagonal.
     - ``verdict``: list of plain-language warnings, empty when nothing looks wrong, e.g.
-      ``"3 faces flipped (0.2% of faces)"``, ``"volume changed by +2.1%"``.
+      ``"3 triangles turned over (0.2% of triangles)"``, ``"volume changed by +2.1%"``.
 
     Self-intersections are not detected: a reliable test needs a spatial search over triangle
     pairs, which does not fit in fast vectorised numpy at a million faces. A fold that turns
@@ -222,8 +244,17 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
     lo_p, hi_p = posed.min(axis=0), posed.max(axis=0)
     diagonal = float(np.linalg.norm(hi_r - lo_r))
 
-    # topology
-    edges, boundary, nonmanifold, closed = _edges(faces, n)
+    polygon_count = m if polygons is None else _polygon_count(polygons, m)
+
+    # topology, on vertices welded where both their rest and posed positions are equal (copies
+    # split at a seam move alike; + 0.0 makes -0.0 equal to 0.0)
+    _, first, inverse = np.unique(np.concatenate([rest, posed], axis=1) + 0.0, axis=0,
+                                  return_index=True, return_inverse=True)
+    inverse = inverse.reshape(-1)
+    welded = inverse[faces]
+    solid = (welded[:, 0] != welded[:, 1]) & (welded[:, 1] != welded[:, 2]) & (welded[:, 0] != welded[:, 2])
+    edges_w, boundary, nonmanifold, closed = _edges(welded[solid], len(first))
+    edges = first[edges_w]  # one original vertex per welded edge end
 
     # faces: normals, areas, flips, volume
     n_rest = surface.face_cross_products(rest, faces)
@@ -255,7 +286,9 @@ def quality(rest, posed, faces, *, volume_tolerance=0.01, stretch_tolerance=4.0)
 
     report = {
         "vertex_count": int(n),
-        "face_count": int(m),
+        "position_count": int(len(first)),
+        "polygon_count": int(polygon_count),
+        "triangle_count": int(m),
         "edge_count": int(edges.shape[0]),
         "closed": closed,
         "boundary_edges": boundary,
@@ -291,11 +324,11 @@ def _verdict(r, collapsed, volume_tolerance, stretch_tolerance):
         out.append("no vertex moved")
     if r["flipped_faces"]:
         out.append(
-            f"{_plural(r['flipped_faces'], 'face')} flipped "
-            f"({100 * r['flipped_fraction']:.2g}% of faces)"
+            f"{_plural(r['flipped_faces'], 'triangle')} turned over "
+            f"({100 * r['flipped_fraction']:.2g}% of triangles)"
         )
     if collapsed:
-        out.append(f"{_plural(collapsed, 'face')} collapsed to near-zero area")
+        out.append(f"{_plural(collapsed, 'triangle')} collapsed to near-zero area")
     if r["closed"]:
         if r["volume_change"] is None:
             out.append("rest volume is zero: volume change not measured")
@@ -313,8 +346,8 @@ def _verdict(r, collapsed, volume_tolerance, stretch_tolerance):
         if r["nonmanifold_edges"]:
             why.append(_plural(r["nonmanifold_edges"], "non-manifold edge"))
         if not why:
-            why.append("inconsistent face orientation")
-        out.append(f"mesh is not closed ({', '.join(why)}): volume change not measured")
+            why.append("triangles wound inconsistently")
+        out.append(f"surface is not closed ({', '.join(why)}): volume change not measured")
     smax, smin = r["edge_stretch_max"], r["edge_stretch_min"]
     if smax is not None and smax > stretch_tolerance:
         out.append(f"an edge stretched {smax:.3g} times its rest length")
@@ -339,7 +372,9 @@ def _cell(value):
 
 _LABELS = {
     "vertex_count": "vertices",
-    "face_count": "faces",
+    "position_count": "distinct positions",
+    "polygon_count": "polygons",
+    "triangle_count": "triangles",
     "edge_count": "edges",
     "closed": "closed",
     "boundary_edges": "boundary edges",

@@ -46,7 +46,7 @@ def test_identity_is_clean():
     assert r["flipped_faces"] == 0
     assert r["moved_vertices"] == 0 and r["max_displacement"] == 0.0
     assert r["edge_stretch_min"] == r["edge_stretch_max"] == 1.0
-    assert (r["vertex_count"], r["face_count"], r["edge_count"]) == (4, 4, 6)  # hand: tetrahedron
+    assert (r["vertex_count"], r["triangle_count"], r["edge_count"]) == (4, 4, 6)  # hand: tetrahedron
     assert r["verdict"] == ["no vertex moved"]
 
 
@@ -64,7 +64,7 @@ def test_tetrahedron_fold_counts_flipped_faces():
     assert r["max_displacement"] == 2.0 and r["max_displacement_vertex"] == 3
     assert r["mean_displacement"] == 0.5
     assert r["moved_vertices"] == 1
-    assert "3 faces flipped (75% of faces)" in r["verdict"]
+    assert "3 triangles turned over (75% of triangles)" in r["verdict"]
     assert "volume changed by -200.0%" in r["verdict"]
     assert "posed mesh turned inside out (volume changed sign)" in r["verdict"]
 
@@ -85,7 +85,7 @@ def test_plane_patch_fold_counts_flipped_faces():
     assert r["flipped_faces"] == 2
     assert r["flipped_fraction"] == 0.25  # 2 of 8 triangles
     assert r["closed"] is False and r["volume_change"] is None
-    assert "2 faces flipped (25% of faces)" in r["verdict"]
+    assert "2 triangles turned over (25% of triangles)" in r["verdict"]
 
 
 def test_collapsed_faces_are_degenerate():
@@ -98,7 +98,7 @@ def test_collapsed_faces_are_degenerate():
     assert r["flipped_faces"] == 0  # a collapsed face has no normal: not counted as turned over
     assert r["edge_stretch_min"] == 0.0
     assert r["area_ratio_min"] == 0.0
-    assert "2 faces collapsed to near-zero area" in r["verdict"]
+    assert "2 triangles collapsed to near-zero area" in r["verdict"]
     assert "an edge shrank to 0 of its rest length" in r["verdict"]
 
 
@@ -169,7 +169,7 @@ def test_open_mesh_has_no_volume():
     assert r["volume_rest"] is None and r["volume_posed"] is None and r["volume_change"] is None
     assert r["boundary_edges"] == 3  # hand: removing one triangle from a closed surface opens 3 edges
     assert r["nonmanifold_edges"] == 0
-    assert "mesh is not closed (3 boundary edges): volume change not measured" in r["verdict"]
+    assert "surface is not closed (3 boundary edges): volume change not measured" in r["verdict"]
 
 
 def test_inconsistent_orientation_is_not_closed():
@@ -181,7 +181,7 @@ def test_inconsistent_orientation_is_not_closed():
     r = quality(v, v, f_bad)
     assert r["closed"] is False and r["volume_change"] is None
     assert r["boundary_edges"] == 0 and r["nonmanifold_edges"] == 0
-    assert any("inconsistent face orientation" in w for w in r["verdict"])
+    assert any("triangles wound inconsistently" in w for w in r["verdict"])
 
 
 def test_nonmanifold_edge_is_counted():
@@ -214,7 +214,7 @@ def test_edge_count_matches_trimesh():
     # independent library: trimesh.Trimesh.edges_unique
     assert r["edge_count"] == len(trimesh.Trimesh(v, f, process=False).edges_unique)
     # hand: Euler characteristic of a sphere, V - E + F = 2
-    assert r["vertex_count"] - r["edge_count"] + r["face_count"] == 2
+    assert r["vertex_count"] - r["edge_count"] + r["triangle_count"] == 2
 
 
 def test_stretch_and_area_ratios_match_trimesh():
@@ -269,7 +269,7 @@ def test_folding_displacement_field_is_reported():
     assert expected > 0
     r = quality(v, posed, f)
     assert r["flipped_faces"] == expected
-    assert any("flipped" in w for w in r["verdict"])
+    assert any("turned over" in w for w in r["verdict"])
     # the same field with k w < 1 does not fold
     gentle = v.copy()
     gentle[:, 0] += 0.05 * np.sin(w * v[:, 0])
@@ -347,7 +347,7 @@ def test_format_quality_table():
     text = format_quality(json.loads(json.dumps(r)))
     assert "flipped faces" in text and "3 (75%)" in text
     assert "volume change" in text and "-200%" in text
-    assert "  - 3 faces flipped (75% of faces)" in text
+    assert "  - 3 triangles turned over (75% of triangles)" in text
     assert text.splitlines()[0].startswith("vertices")
     clean = format_quality(quality(TET_V, TET_V * 1.001, TET_F))
     assert "warnings: none" in clean
