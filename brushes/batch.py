@@ -25,7 +25,11 @@ from pathlib import Path
 from typing import Callable, Iterable, Sequence
 
 __all__ = ["BatchError", "ClusterUnavailable", "Outcome", "describe", "interrupted", "plan",
-           "pose_file", "run_batch"]
+           "pose_document", "pose_file", "run_batch", "TINY_MOTION"]
+
+# A stroke whose largest motion is below this fraction of the mesh's size (its bounding-box
+# diagonal) has most likely missed the mesh or is at another scale: it gets a warning.
+TINY_MOTION = 1e-6
 
 
 class BatchError(ValueError):
@@ -44,6 +48,7 @@ class Outcome:
     target: str
     error: str | None
     seconds: float
+    warnings: tuple = ()
 
     @property
     def ok(self) -> bool:
@@ -116,6 +121,39 @@ def _identity(path: Path):
         return ("path", os.path.normcase(os.path.realpath(path)))
 
 
+def pose_document(recipe, doc):
+    """Apply ``recipe`` to ``doc`` stroke by stroke, exactly as ``Recipe.apply``, and warn about
+    strokes at the wrong scale.
+
+    recipe : ``brushes.recipe.Recipe``; doc : ``brushes.formats.MeshDoc``.
+    Returns (posed (n, 3) float64, warnings: list of str naming the stroke). A stroke warns
+    when it moves no vertex by more than ``TINY_MOTION`` times the mesh's bounding-box
+    diagonal, or when it moves every vertex by more than that diagonal.
+    """
+    import numpy as np
+
+    points = np.asarray(doc.vertices, dtype=np.float64)
+    size = float(np.linalg.norm(points.max(axis=0) - points.min(axis=0))) if len(points) else 0.0
+    out = points.copy()
+    warnings = []
+    groups = _groups(doc)
+    for i, stroke in enumerate(recipe.strokes):
+        before = out
+        out = stroke.apply(out, groups=groups, _where=f"strokes[{i}]")
+        if size <= 0 or not len(out):
+            continue
+        moved = np.linalg.norm(out - before, axis=1)
+        if moved.max() < TINY_MOTION * size:
+            warnings.append(f"strokes[{i}]: moves the mesh by at most {moved.max():.3g}, less than "
+                            f"{TINY_MOTION:g} of its size {size:.4g}; is the brush on the mesh "
+                            "and at its scale?")
+        elif moved.min() > size:
+            warnings.append(f"strokes[{i}]: moves every vertex by more than the mesh's size "
+                            f"{size:.4g} (at least {moved.min():.4g}); is the brush at the "
+                            "mesh's scale?")
+    return out, warnings
+
+
 def pose_file(recipe, source: str, target: str) -> Outcome:
     """Pose one mesh file with ``recipe`` and write it to ``target``; never raises on bad data.
 
@@ -130,14 +168,15 @@ def pose_file(recipe, source: str, target: str) -> Outcome:
         if isinstance(recipe, (str, os.PathLike)):
             recipe = load_recipe(recipe)
         doc = load_mesh(source)
-        posed = recipe.apply(doc.vertices, groups=_groups(doc))
+        posed, warnings = pose_document(recipe, doc)
         save_mesh(doc, target, vertices=posed)
         error = None
     except Exception as exc:  # noqa: BLE001 - one bad mesh must not stop the batch
         if interrupted(exc):
             raise KeyboardInterrupt from exc
         error = describe(exc)
-    return Outcome(source, target, error, time.perf_counter() - start)
+        warnings = []
+    return Outcome(source, target, error, time.perf_counter() - start, tuple(warnings))
 
 
 def _groups(doc):

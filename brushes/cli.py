@@ -66,10 +66,13 @@ command to see tracebacks.
 HELP = {
     "apply": ("pose one mesh with a recipe",
               "Replay a recipe stroke by stroke on one mesh and write the posed mesh.\n"
-              "The output format follows OUT's extension (.obj .ply .stl .off .glb .gltf).\n"
-              "In the input's own format only positions (and stored normals) change: an OBJ\n"
-              "keeps its groups, texture coordinates, materials and comments. Another format\n"
-              "carries positions, faces and per-vertex texture coordinates.",
+              "The output format follows OUT's extension (.obj .ply .stl .off .glb .gltf\n"
+              ".usd .usda .usdc). In the input's own format only positions (and stored\n"
+              "normals) change: an OBJ keeps its groups, texture coordinates, materials and\n"
+              "comments. Another format is a conversion that keeps what it can hold\n"
+              "(polygons, texture coordinates, normals, groups, material names) and prints\n"
+              "one line naming what it could not keep. A stroke that barely moves the mesh\n"
+              "(under 1e-6 of its size) or moves all of it by more than its size is warned of.",
               """\
 examples:
   pliant apply pose.json figure.obj -o figure-posed.obj
@@ -89,13 +92,15 @@ examples:
     (needs: pip install pliant[cluster])
 """),
     "delta": ("corrective shape from a rest and a posed mesh",
-              "Write the corrective shape (posed minus rest, per vertex) of two meshes\n"
-              "with the same vertices and faces: .npz (numpy deltas) or .glb/.gltf (glTF\n"
-              "morph target on the rest mesh).",
+              "Write the corrective shape (posed minus rest, per vertex) of a mesh and a posed\n"
+              "copy of it (the same file, or one pliant converted, or an STL with the same\n"
+              "facets): .npz (numpy deltas), .glb/.gltf (glTF morph target on the rest mesh)\n"
+              "or .usd/.usda/.usdc (UsdSkel blend shape bound to the rest mesh).",
               """\
 examples:
   pliant delta figure.obj figure-posed.obj -o figure-pose.npz
   pliant delta figure.obj figure-posed.obj -o figure-pose.glb
+  pliant delta figure.usda figure-posed.usda -o figure-pose.usda
 """),
     "report": ("quality report of a posed mesh against its rest mesh",
                "Compare a posed mesh with its rest mesh: volume change, displacement,\n"
@@ -182,7 +187,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("-o", "--out", required=True, metavar="OUT",
                    help="posed mesh to write; format from the extension")
     p.add_argument("--delta", metavar="OUT2",
-                   help="also write the corrective shape (.npz, .glb or .gltf)")
+                   help="also write the corrective shape (.npz, .glb, .gltf, .usd, .usda, .usdc)")
     p.add_argument("--force", action="store_true", help="allow writing over an input file")
 
     p = command("batch")
@@ -199,14 +204,14 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = command("delta")
     p.add_argument("rest", metavar="REST", help="rest mesh")
-    p.add_argument("posed", metavar="POSED", help="posed mesh (same vertices and faces)")
+    p.add_argument("posed", metavar="POSED", help="the same mesh posed (any format pliant wrote it in)")
     p.add_argument("-o", "--out", required=True, metavar="OUT",
-                   help="corrective shape to write (.npz, .glb or .gltf)")
+                   help="corrective shape to write (.npz, .glb, .gltf, .usd, .usda, .usdc)")
     p.add_argument("--force", action="store_true", help="allow writing over an input file")
 
     p = command("report")
     p.add_argument("rest", metavar="REST", help="rest mesh")
-    p.add_argument("posed", metavar="POSED", help="posed mesh (same vertices and faces)")
+    p.add_argument("posed", metavar="POSED", help="the same mesh posed (any format pliant wrote it in)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
 
     p = command("demo")
@@ -254,6 +259,9 @@ def _check_outputs(outputs: list[tuple[str, str | None]], inputs: list[str], *,
     for opt, out in named:
         if out.is_dir():
             raise CliError(f"{opt}: {out} is a folder, expected a file name")
+        folder = out.absolute().parent
+        if not folder.is_dir():
+            raise CliError(f"{opt}: {out}: folder {folder} does not exist")
         if not force:
             for inp in inputs:
                 if _same_file(out, Path(inp)):
@@ -265,7 +273,7 @@ def _check_outputs(outputs: list[tuple[str, str | None]], inputs: list[str], *,
                 raise CliError(f"{opt_b}: {b} is also the {opt_a} output; give distinct names")
 
 
-DELTA_FORMATS = ("npz", "glb", "gltf")
+DELTA_FORMATS = ("npz", "glb", "gltf", "usd", "usda", "usdc")
 
 
 def _mesh_formats() -> tuple[str, ...]:
@@ -282,17 +290,38 @@ def _check_suffix(option: str, path: str, formats) -> None:
                        + ", ".join(f".{f}" for f in formats))
 
 
-def _same_topology(rest, posed, rest_name: str, posed_name: str) -> None:
-    import numpy as np
+def _posed_in_rest_order(rest, posed, rest_name: str, posed_name: str, *, purpose: str):
+    """``posed``'s positions in ``rest``'s vertex order (see brushes.formats.match)."""
+    from brushes.formats import MeshError
+    from brushes.formats.match import posed_in_rest_order
 
-    nr, np_ = len(rest.vertices), len(posed.vertices)
-    if nr != np_:
-        raise CliError(f"{posed_name}: has {np_} vertices but {rest_name} has {nr}; "
-                       "a corrective shape needs the same mesh in two poses")
-    if np.shape(rest.faces) != np.shape(posed.faces) or not np.array_equal(rest.faces,
-                                                                           posed.faces):
-        raise CliError(f"{posed_name}: faces differ from {rest_name}; "
-                       "a corrective shape needs the same mesh in two poses")
+    try:
+        return posed_in_rest_order(rest, posed, rest_name=rest_name, posed_name=posed_name)
+    except MeshError as exc:
+        raise CliError(f"{exc}; {purpose}") from None
+
+
+def _recipe_context(recipe_path: str):
+    """Re-raise a recipe problem found while posing (a mask group the mesh lacks) with the
+    recipe's file name, as problems found on load carry it."""
+    import contextlib
+
+    from brushes.recipe import RecipeError
+
+    @contextlib.contextmanager
+    def context():
+        try:
+            yield
+        except RecipeError as exc:
+            if exc.source is None:
+                raise RecipeError(exc.problems, source=recipe_path) from None
+            raise
+
+    return context()
+
+
+def _warn(message: str) -> None:
+    print(f"{PROG}: warning: {message}", file=sys.stderr)
 
 
 def _groups(doc):
@@ -314,18 +343,16 @@ def cmd_apply(args) -> int:
         _check_suffix("--delta", args.delta, DELTA_FORMATS)
     recipe = load_recipe(args.recipe)
     doc = load_mesh(args.mesh)
-    posed = recipe.apply(doc.vertices, groups=_groups(doc))
-    target_format = Path(args.out).suffix.lower().lstrip(".")
-    if doc.format is not None and target_format != doc.format:
-        # Another format cannot carry the source's structure: keep positions, faces and
-        # per-vertex texture coordinates.
-        from brushes.formats import MeshDoc
+    from brushes.batch import pose_document
 
-        save_mesh(MeshDoc.from_arrays(posed, doc.faces, uv=doc.uv), args.out)
-        print(f"posed: {args.out} (converted from {doc.format.upper()}: positions, faces "
-              "and texture coordinates only)")
+    with _recipe_context(args.recipe):
+        posed, warnings = pose_document(recipe, doc)
+    for warning in warnings:
+        _warn(f"{args.mesh}: {warning}")
+    written = save_mesh(doc, args.out, vertices=posed)
+    if written.converted is not None:
+        print(f"posed: {args.out} ({written.summary()})")
     else:
-        save_mesh(doc, args.out, vertices=posed)
         print(f"posed: {args.out}")
     if args.delta:
         from brushes.correctives import write_delta
@@ -349,33 +376,75 @@ def cmd_batch(args) -> int:
                        f"{args.recipe}; refusing (use --force)")
     Path(args.out).mkdir(parents=True, exist_ok=True)
 
-    from tqdm import tqdm
-
     start = time.perf_counter()
-    bars = []
-
-    def started() -> None:
-        bars.append(tqdm(total=len(tasks), file=sys.stderr, unit="mesh", desc="batch",
-                         disable=args.quiet, dynamic_ncols=True))
+    progress = _Progress(len(tasks), stream=sys.stderr, enabled=not args.quiet)
+    warned = []
 
     def done(outcome) -> None:
+        for warning in outcome.warnings:
+            warned.append(outcome.source)
+            progress.message(f"{PROG}: warning: {outcome.source}: {warning}")
         if not outcome.ok:
             named = (outcome.error if outcome.source in outcome.error
                      else f"{outcome.source}: {outcome.error}")
-            tqdm.write(f"{PROG}: error: {named}", file=sys.stderr)
-        if bars:
-            bars[0].update(1)
+            progress.message(f"{PROG}: error: {named}")
+        progress.step()
 
     try:
         outcomes = run_batch(recipe, tasks, jobs=args.jobs, scheduler=args.scheduler,
-                             on_start=started, on_done=done)
+                             on_start=progress.draw, on_done=done)
     finally:
-        for bar in bars:
-            bar.close()
+        progress.close()
     seconds = time.perf_counter() - start
     posed = sum(o.ok for o in outcomes)
+    failed = [o.source for o in outcomes if not o.ok]
+    if failed:
+        print("failed: " + ", ".join(Path(f).name for f in failed))
+    if warned:
+        print(f"warnings: {len(warned)} (on {len(set(warned))} meshes; see above)")
     print(f"batch: {posed} posed, {len(outcomes) - posed} failed, {seconds:.1f} s")
     return EXIT_OK if posed == len(outcomes) else EXIT_PARTIAL
+
+
+class _Progress:
+    """One progress line on a terminal (``batch 12/40 [#####...] 3.1 s``), redrawn in place;
+    messages are printed on lines of their own above it. Off when the stream is not a
+    terminal (a log file gets the messages only)."""
+
+    def __init__(self, total: int, *, stream, enabled: bool):
+        self.total, self.done, self.stream = total, 0, stream
+        self.enabled = enabled and hasattr(stream, "isatty") and stream.isatty()
+        self.start = time.perf_counter()
+        self.shown = False
+
+    def _line(self) -> str:
+        width = 24
+        filled = width * self.done // max(self.total, 1)
+        return (f"batch {self.done}/{self.total} [{'#' * filled}{'.' * (width - filled)}] "
+                f"{time.perf_counter() - self.start:.1f} s")
+
+    def draw(self) -> None:
+        if self.enabled:
+            self.stream.write("\r\x1b[K" + self._line())
+            self.stream.flush()
+            self.shown = True
+
+    def message(self, text: str) -> None:
+        if self.shown:
+            self.stream.write("\r\x1b[K")
+        self.stream.write(text + "\n")
+        self.stream.flush()
+        self.draw()
+
+    def step(self) -> None:
+        self.done += 1
+        self.draw()
+
+    def close(self) -> None:
+        if self.shown:
+            self.stream.write("\r\x1b[K")
+            self.stream.flush()
+            self.shown = False
 
 
 def cmd_delta(args) -> int:
@@ -388,8 +457,9 @@ def cmd_delta(args) -> int:
     _check_suffix("--out", args.out, DELTA_FORMATS)
     rest = load_mesh(args.rest)
     posed = load_mesh(args.posed)
-    _same_topology(rest, posed, args.rest, args.posed)
-    write_delta(args.out, rest, posed.vertices)
+    posed_vertices = _posed_in_rest_order(rest, posed, args.rest, args.posed,
+                                          purpose="a corrective shape needs the same mesh in two poses")
+    write_delta(args.out, rest, posed_vertices)
     print(f"corrective shape: {args.out}")
     return EXIT_OK
 
@@ -402,8 +472,10 @@ def cmd_report(args) -> int:
     _existing(args.posed, "POSED")
     rest = load_mesh(args.rest)
     posed = load_mesh(args.posed)
-    _same_topology(rest, posed, args.rest, args.posed)
-    report = quality(rest.vertices, posed.vertices, rest.faces)
+    posed_vertices = _posed_in_rest_order(rest, posed, args.rest, args.posed,
+                                          purpose="the report compares a mesh with a posed copy of it")
+    counts = None if rest.polygons is None else rest.polygons.counts
+    report = quality(rest.vertices, posed_vertices, rest.faces, polygons=counts)
     if args.json:
         print(json.dumps(report, indent=2))
     else:
@@ -483,7 +555,8 @@ def cmd_snapshot(args) -> int:
 
         from brushes.recipe import load_recipe
 
-        vertices = load_recipe(args.recipe).apply(doc.vertices, groups=_groups(doc))
+        with _recipe_context(args.recipe):
+            vertices = load_recipe(args.recipe).apply(doc.vertices, groups=_groups(doc))
         magnitude = np.linalg.norm(vertices - doc.vertices, axis=1)
     try:
         snapshot(vertices, doc.faces, args.out, size=args.size, view=args.view,

@@ -204,7 +204,9 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
 
     attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
     if uv is not None:
-        attributes["TEXCOORD_0"] = add(np.asarray(uv, np.float32), _ARRAY_BUFFER, "VEC2", _FLOAT, False)
+        uv = np.asarray(uv, np.float64)
+        uv = np.stack([uv[:, 0], 1.0 - uv[:, 1]], axis=1)  # glTF's texture origin is top left
+        attributes["TEXCOORD_0"] = add(uv.astype(np.float32), _ARRAY_BUFFER, "VEC2", _FLOAT, False)
     target = {"POSITION": _target_accessor(deltas, add, accessors, views, blobs)}
     primitive = {"attributes": attributes, "targets": [target]}
     faces = np.asarray(faces, np.int64).reshape(-1, 3)

@@ -160,7 +160,10 @@ def test_gltf_morph_target_content(tmp_path, ext):
     np.testing.assert_allclose(base, rest.vertices, atol=1e-6)
     np.testing.assert_allclose(base + delta, posed, atol=1e-6)
     np.testing.assert_array_equal(accessor(prim["indices"]).reshape(-1, 3), rest.faces)
-    np.testing.assert_allclose(accessor(prim["attributes"]["TEXCOORD_0"]), rest.uv, atol=1e-7)
+    # glTF 2.0 puts the texture origin at the image's top left, OBJ (and pliant) at the bottom
+    # left (glTF 2.0 specification, "Meshes"; trimesh flips v the same way): v becomes 1 - v
+    flipped = np.stack([rest.uv[:, 0], 1 - rest.uv[:, 1]], axis=1)
+    np.testing.assert_allclose(accessor(prim["attributes"]["TEXCOORD_0"]), flipped, atol=1e-7)
     for a in (prim["attributes"]["POSITION"], prim["targets"][0]["POSITION"]):
         acc = gltf["accessors"][a]
         assert acc["min"] == accessor(a).min(0).tolist() and acc["max"] == accessor(a).max(0).tolist()

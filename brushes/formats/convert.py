@@ -149,10 +149,10 @@ def convert(doc: MeshDoc, vertices, path):
     out_vertices, source = vertices, None
     if attrs == "vertex":
         out_vertices, polys, source = split_vertices(vertices, polys)
-        if np.array_equal(source, np.arange(n_before)):
-            source = None
-        elif doc.source_vertex is not None:
+        if doc.source_vertex is not None:
             source = doc.source_vertex[source]  # a split of a split still names the first source
+        elif np.array_equal(source, np.arange(n_before)):
+            source = None
     elif attrs is None:
         polys = Polygons(polys.counts, polys.corners)
     if target == "obj":

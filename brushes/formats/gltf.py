@@ -302,6 +302,8 @@ def _gltf_doc(path, gltf, buffers, fmt, folder) -> MeshDoc:
     vertices = np.concatenate(all_v)
     faces = np.concatenate(all_f).astype(np.int64) if all_f else np.zeros((0, 3), np.int64)
     uv = np.concatenate(all_uv) if uv_ok and all_uv else None
+    if uv is not None:  # glTF's texture origin is the image's top left; pliant's (OBJ's) bottom left
+        uv = np.stack([uv[:, 0], 1.0 - uv[:, 1]], axis=1)
     normals = "recomputed" if any(p.normal is not None for p in records) else "absent"
     source = _GltfSource(gltf, buffers, fmt == "glb", folder, records)
     polys = Polygons.from_triangles(faces)
@@ -517,8 +519,9 @@ def export(vertices, polys: Polygons, *, glb=True, source_vertex=None, name="mes
             n = np.divide(n, length, out=np.tile([0.0, 0.0, 1.0], (len(n), 1)), where=length > 0)
             attributes["NORMAL"] = add(n.astype(np.float32), _ARRAY_BUFFER, "VEC3", 5126)
         if polys.uv is not None:
-            attributes["TEXCOORD_0"] = add(np.asarray(polys.uv, np.float32)[used], _ARRAY_BUFFER,
-                                           "VEC2", 5126)
+            uv = np.asarray(polys.uv, np.float64)[used]
+            uv = np.stack([uv[:, 0], 1.0 - uv[:, 1]], axis=1)  # to glTF's top-left origin
+            attributes["TEXCOORD_0"] = add(uv.astype(np.float32), _ARRAY_BUFFER, "VEC2", 5126)
         if source_vertex is not None:
             attributes[SOURCE_ATTRIBUTE] = add(np.asarray(source_vertex, np.float32)[used],
                                                _ARRAY_BUFFER, "SCALAR", 5126)

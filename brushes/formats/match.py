@@ -45,7 +45,9 @@ def posed_in_rest_order(rest: MeshDoc, posed: MeshDoc, *, rest_name="REST", pose
         if agree:
             out[unused] = rest.vertices[unused]
             return out
+    if len(posed.vertices) == n:
+        raise MeshError(f"{posed_name}: has the {n} vertices of {rest_name} but other faces, and "
+                        "no record of a conversion")
     raise MeshError(f"{posed_name}: its vertices do not match {rest_name} ({len(posed.vertices)} "
                     f"vertices and {len(posed.faces)} triangles against {n} and {len(rest.faces)}, "
-                    "and no record of a conversion); compare a posed file with the file it was "
-                    "posed from")
+                    "and no record of a conversion)")
