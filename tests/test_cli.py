@@ -588,3 +588,153 @@ def test_snapshot_renders_a_png_of_the_requested_size(files, tmp_path):
     assert_error(pliant("snapshot", files["mesh"], "-o", tmp_path / "b.png", "--view", "up=3"),
                  mentions=["view"])
     assert not (tmp_path / "b.png").exists()
+
+
+# --------------------------------------------------------------------------- issue 11: files in a pipeline
+
+QUAD_OBJ = ("v 0 0 0\nv 1 0 0\nv 1 1 0\nv 0 1 0\nv 0 0 1\nv 1 0 1\nv 1 1 1\nv 0 1 1\n"
+            "vt 0 0\nvt 1 0\nvt 1 1\nvt 0 1\nvt 0.5 0.5\nvt 0.25 0.75\n"
+            "g lid\nusemtl paint\nf 1/1 4/2 3/3 2/4\nf 5/1 6/2 7/3 8/4\n"
+            "g sides\nusemtl wood\nf 1/5 2/6 6/3 5/4\nf 2/1 3/2 7/3 6/4\nf 3/1 4/2 8/3 7/4\n"
+            "f 4/5 1/6 5/3 8/4\n")
+
+
+def _recipe(tmp_path, strokes, name="r.json"):
+    path = tmp_path / name
+    path.write_text(json.dumps({"format": "pliant-recipe", "version": 1, "strokes": strokes}))
+    return path
+
+
+CUBE_GRAB = {"brush": "grab", "center": [1, 1, 1], "radius": 0.8, "move": [0.1, 0.05, 0.0]}
+
+
+def test_apply_converts_and_says_in_one_line_what_it_could_not_keep(tmp_path):
+    cube = tmp_path / "cube.obj"
+    cube.write_text(QUAD_OBJ)
+    recipe = _recipe(tmp_path, [CUBE_GRAB])
+    proc = pliant("apply", recipe, cube, "-o", tmp_path / "cube.glb")
+    assert proc.returncode == 0, proc.stderr
+    line = proc.stdout.splitlines()[0]
+    assert line.startswith(f"posed: {tmp_path / 'cube.glb'} (converted OBJ to GLB; vertices 8 -> ")
+    assert line.endswith("not kept: polygons (6 polygons written as 12 triangles))")
+    proc = pliant("apply", recipe, cube, "-o", tmp_path / "cube.stl")
+    assert "not kept: texture coordinates, groups (lid, sides), materials (paint, wood), polygons" \
+        in proc.stdout
+    # the group mask still finds its group in the converted file (glTF node names)
+    masked = _recipe(tmp_path, [dict(CUBE_GRAB, mask={"group": "lid"})], "m.json")
+    proc = pliant("apply", masked, tmp_path / "cube.glb", "-o", tmp_path / "again.glb")
+    assert proc.returncode == 0, proc.stderr
+
+
+def test_output_folders_are_checked_first_and_named_by_option(files, tmp_path):
+    missing = tmp_path / "nowhere"
+    assert_error(pliant("apply", files["recipe"], files["mesh"], "-o", missing / "p.obj"),
+                 mentions=["--out:", str(missing / "p.obj")])
+    assert_error(pliant("apply", files["recipe"], files["mesh"], "-o", tmp_path / "p.obj",
+                        "--delta", missing / "d.npz"), mentions=["--delta:", "does not exist"])
+    assert not (tmp_path / "p.obj").exists()                # nothing half done
+    assert_error(pliant("delta", files["mesh"], files["mesh"], "-o", missing / "d.glb"),
+                 mentions=["--out:"])
+
+
+def test_mask_error_names_the_recipe_file(files, tmp_path):
+    recipe = _recipe(tmp_path, [dict(RECIPE["strokes"][0], mask={"group": "tail"})])
+    assert_error(pliant("apply", recipe, files["mesh"], "-o", tmp_path / "p.obj"),
+                 mentions=[f"{recipe}: strokes[0].mask.group"])
+
+
+def test_report_counts_polygons_and_triangles(tmp_path):
+    cube = tmp_path / "cube.obj"
+    cube.write_text(QUAD_OBJ)
+    recipe = _recipe(tmp_path, [CUBE_GRAB])
+    assert pliant("apply", recipe, cube, "-o", tmp_path / "posed.obj").returncode == 0
+    report = json.loads(pliant("report", cube, tmp_path / "posed.obj", "--json").stdout)
+    assert (report["polygon_count"], report["triangle_count"]) == (6, 12)
+    # the seam-split GLB of the same cube is closed and has the cube's volume (1, by hand)
+    assert pliant("apply", recipe, cube, "-o", tmp_path / "posed.glb").returncode == 0
+    report = json.loads(pliant("report", cube, tmp_path / "posed.glb", "--json").stdout)
+    assert report["closed"] is True and report["volume_rest"] == pytest.approx(1.0)
+
+
+def test_report_compares_a_posed_stl_with_its_source(files, tmp_path):
+    stl = tmp_path / "ball.stl"
+    stl.write_bytes(trimesh.load(files["mesh"], process=False).export(file_type="stl"))
+    posed = tmp_path / "posed.stl"
+    assert pliant("apply", files["recipe"], stl, "-o", posed).returncode == 0
+    proc = pliant("report", stl, posed, "--json")
+    assert proc.returncode == 0, proc.stderr
+    report = json.loads(proc.stdout)
+    # outside reference: trimesh's volumes of the two STL files (it merges their corners)
+    a, b = trimesh.load(stl), trimesh.load(posed)
+    assert report["volume_change"] == pytest.approx(b.volume / a.volume - 1, abs=1e-6)
+    assert report["max_displacement"] == pytest.approx(np.linalg.norm(
+        files["posed"] - files["rest"], axis=1).max(), abs=1e-5)
+
+
+def test_report_mismatch_has_its_own_wording(files, tmp_path):
+    small = tmp_path / "small.obj"
+    trimesh.creation.icosphere(subdivisions=1).export(small)
+    proc = pliant("report", files["mesh"], small)
+    assert_error(proc, mentions=["compares a mesh with a posed copy"])
+    assert "corrective" not in proc.stderr
+
+
+def test_strokes_at_the_wrong_scale_are_warned_of(files, tmp_path):
+    far = {"brush": "grab", "center": [1e4, 0, 0], "radius": 1e-3, "move": [1e-3, 0, 0]}
+    huge = {"brush": "grab", "center": [0, 0, 0], "radius": 500.0, "move": [30.0, 0, 0]}
+    fine = RECIPE["strokes"][0]
+    recipe = _recipe(tmp_path, [fine, far, huge])
+    proc = pliant("apply", recipe, files["mesh"], "-o", tmp_path / "p.obj")
+    assert proc.returncode == 0, proc.stderr
+    warnings = [ln for ln in proc.stderr.splitlines() if ln.startswith("pliant: warning:")]
+    assert len(warnings) == 2, proc.stderr
+    assert "strokes[1]: moves the mesh by at most" in warnings[0]
+    assert "strokes[2]: moves every vertex by more than the mesh's size" in warnings[1]
+
+
+def test_delta_as_usd_blend_shape(files, tmp_path):
+    pytest.importorskip("pxr", reason="usd-core (a dependency in pyproject) is not installed")
+    from pxr import Usd, UsdSkel
+
+    out = tmp_path / "pose.usda"
+    proc = pliant("apply", files["recipe"], files["mesh"], "-o", tmp_path / "p.obj", "--delta", out)
+    assert proc.returncode == 0, proc.stderr
+    stage = Usd.Stage.Open(str(out))
+    blends = [p for p in stage.Traverse() if p.IsA(UsdSkel.BlendShape)]
+    assert len(blends) == 1
+    offsets = np.array(UsdSkel.BlendShape(blends[0]).GetOffsetsAttr().Get())
+    indices = UsdSkel.BlendShape(blends[0]).GetPointIndicesAttr().Get()
+    full = np.zeros_like(files["rest"])
+    full[np.arange(len(full)) if indices is None else np.array(indices)] = offsets
+    np.testing.assert_allclose(files["rest"] + full, files["posed"], atol=1e-5)
+
+
+def test_batch_progress_stays_on_one_terminal_line(files, batch_inputs, tmp_path):
+    # a pseudo-terminal as stderr: the bar is redrawn in place and each message is a line above it
+    import pty
+
+    good, corrupt = batch_inputs
+    master, slave = pty.openpty()
+    proc = subprocess.Popen([sys.executable, "-m", "brushes.cli", "batch", str(files["recipe"]),
+                             *map(str, good), str(corrupt), "--out", str(tmp_path / "o"),
+                             "--jobs", "1"], stdout=subprocess.PIPE, stderr=slave, env=env())
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 4096)
+        except OSError:  # the other end closed: the child exited
+            break
+        if not data:
+            break
+        chunks.append(data)
+    stdout, _ = proc.communicate(timeout=300)
+    os.close(master)
+    text = b"".join(chunks).decode()
+    assert proc.returncode == 1
+    # every full line printed to the terminal is a message; bar states only follow "\r\x1b[K"
+    lines = [seg.split("\r\x1b[K")[-1] for seg in text.replace("\r\n", "\n").split("\n")]
+    messages = [ln for ln in lines[:-1] if ln]
+    assert len(messages) == 1 and messages[0].startswith("pliant: error: ") and "corrupt.obj" in messages[0]
+    assert "batch 4/4 [" in text and lines[-1] == ""           # the bar is cleared at the end
+    assert stdout.decode().strip().splitlines()[-1].startswith("batch: 3 posed, 1 failed, ")

@@ -196,3 +196,99 @@ def test_gltf_uses_32_bit_indices_for_large_meshes(tmp_path):
     np.testing.assert_array_equal(accessor(prim["indices"]).reshape(-1, 3), faces)
     report = _validate(out)
     assert report["issues"]["numErrors"] == 0, report["issues"]["messages"]
+
+
+# --------------------------------------------------------------------------- sparse glTF targets
+
+
+def _local_pose(rest):
+    """Moves only the vertices above z = 0.6 (a raised cap): most offsets are zero."""
+    v = rest.vertices
+    posed = v.copy()
+    cap = v[:, 2] > 0.6
+    posed[cap] += [0.15, 0.0, 0.05]
+    return posed, cap
+
+
+@pytest.mark.parametrize("ext", [".glb", ".gltf"])
+def test_sparse_target_when_smaller_validates_and_reads_back(tmp_path, ext):
+    rest = _rest()
+    posed, cap = _local_pose(rest)
+    out = tmp_path / f"c{ext}"
+    write_delta(out, rest, posed)
+    report = _validate(out)
+    # Khronos glTF-Validator: no errors or warnings, sparse accessors and min/max included
+    assert report["issues"]["numErrors"] == 0 and report["issues"]["numWarnings"] == 0, \
+        report["issues"]["messages"]
+    gltf, accessor = _read_gltf(out)
+    prim = gltf["meshes"][0]["primitives"][0]
+    acc = gltf["accessors"][prim["targets"][0]["POSITION"]]
+    assert "bufferView" not in acc and acc["sparse"]["count"] == int(cap.sum())
+    # read the sparse parts by hand (glTF 2.0 specification, "Sparse Accessors")
+    sp = acc["sparse"]
+    views = gltf["bufferViews"]
+    data = open(out, "rb").read()
+    if ext == ".glb":
+        jlen = struct.unpack_from("<I", data, 12)[0]
+        binary = data[28 + jlen:]
+    else:
+        binary = base64.b64decode(gltf["buffers"][0]["uri"].split(",", 1)[1])
+    idx = np.frombuffer(binary, "<u2", sp["count"], views[sp["indices"]["bufferView"]]["byteOffset"])
+    val = np.frombuffer(binary, "<f4", 3 * sp["count"],
+                        views[sp["values"]["bufferView"]]["byteOffset"]).reshape(-1, 3)
+    dense = np.zeros_like(rest.vertices)
+    dense[idx] = val
+    np.testing.assert_allclose(rest.vertices + dense, posed, atol=1e-6)
+    assert idx.tolist() == np.flatnonzero(cap).tolist()
+    # and it is smaller than the same file with every vertex moved a little
+    dense_out = tmp_path / f"d{ext}"
+    write_delta(dense_out, rest, posed + 1e-3)
+    assert os.path.getsize(out) < os.path.getsize(dense_out)
+
+
+def test_unmoved_target_is_zeros_without_data(tmp_path):
+    rest = _rest()
+    out = tmp_path / "c.glb"
+    write_delta(out, rest, rest.vertices)
+    report = _validate(out)
+    assert report["issues"]["numErrors"] == 0 and report["issues"]["numWarnings"] == 0
+    gltf, _ = _read_gltf(out)
+    acc = gltf["accessors"][gltf["meshes"][0]["primitives"][0]["targets"][0]["POSITION"]]
+    assert "bufferView" not in acc and "sparse" not in acc  # all zeros by the glTF 2.0 rule
+
+
+# --------------------------------------------------------------------------- USD blend shapes
+
+
+@pytest.mark.parametrize("ext", [".usda", ".usdc", ".usd"])
+def test_usd_blend_shape_validates_and_applies_in_pxr(tmp_path, ext):
+    pytest.importorskip("pxr", reason="usd-core (a dependency in pyproject) is not installed")
+    from pxr import Usd, UsdGeom, UsdSkel, UsdValidation, Vt
+
+    rest = _rest()
+    posed, cap = _local_pose(rest)
+    out = tmp_path / f"pose{ext}"
+    write_delta(out, rest, posed, name="cap raise", weight=0.5)
+    stage = Usd.Stage.Open(str(out))
+    # outside reference: every validator OpenUSD registers reports no error
+    registry = UsdValidation.ValidationRegistry()
+    context = UsdValidation.ValidationContext(registry.GetOrLoadAllValidators())
+    errors = [e.GetMessage() for e in context.Validate(stage)
+              if e.GetType() == UsdValidation.ValidationErrorType.Error]
+    assert not errors
+    assert UsdGeom.GetStageUpAxis(stage) == "Y" and UsdGeom.GetStageMetersPerUnit(stage) == 1.0
+    mesh = next(p for p in stage.Traverse() if p.IsA(UsdGeom.Mesh))
+    binding = UsdSkel.BindingAPI(mesh)
+    assert list(binding.GetBlendShapesAttr().Get()) == ["cap_raise"]
+    blend = UsdSkel.BlendShape(stage.GetPrimAtPath(binding.GetBlendShapeTargetsRel().GetTargets()[0]))
+    assert np.array(blend.GetPointIndicesAttr().Get()).tolist() == np.flatnonzero(cap).tolist()
+    # pxr applies the shape at weight 1: the rest points become the posed ones
+    query = UsdSkel.BlendShapeQuery(binding)
+    weights, shapes, subshapes = query.ComputeSubShapeWeights(Vt.FloatArray([1.0]))
+    points = UsdGeom.Mesh(mesh).GetPointsAttr().Get()
+    assert query.ComputeDeformedPoints(weights, shapes, subshapes,
+                                       query.ComputeBlendShapePointIndices(),
+                                       query.ComputeSubShapePointOffsets(), points)
+    np.testing.assert_allclose(np.array(points), posed, atol=1e-6)
+    anim = UsdSkel.Animation(stage.GetPrimAtPath("/Corrective/Skeleton/Pose"))
+    assert list(anim.GetBlendShapeWeightsAttr().Get()) == [0.5]

@@ -415,3 +415,47 @@ def test_stretch_tolerance_controls_warning():
     assert "an edge stretched 3 times its rest length" in quality(
         v, posed, f, stretch_tolerance=2.0
     )["verdict"]
+
+
+# --- welded topology and polygon counts (issue 11) -----------------------------------------------
+
+
+def _split_every_face(v, f):
+    """Each triangle gets its own three vertices: what a file split at every seam looks like."""
+    return v[f.reshape(-1)], np.arange(3 * len(f)).reshape(-1, 3)
+
+
+@pytest.mark.parametrize("make", [sphere, box])
+def test_seam_split_mesh_is_closed_and_has_its_volume(make):
+    v, f = make()
+    sv, sf = _split_every_face(v, f)
+    posed = sv * [1.0, 1.1, 1.0]
+    r = quality(sv, posed, sf)
+    assert r["vertex_count"] == 3 * len(f) and r["position_count"] == len(v)
+    assert r["closed"] is True and r["boundary_edges"] == 0
+    # independent library: trimesh's volume of the unsplit mesh, and the determinant 1.1
+    ref = trimesh.Trimesh(v, f, process=False).volume
+    assert r["volume_rest"] == pytest.approx(ref, rel=1e-12)
+    assert r["volume_change"] == pytest.approx(0.1, rel=1e-9)
+    assert r["edge_count"] == len(trimesh.Trimesh(v, f, process=False).edges_unique)
+
+
+def test_copies_that_part_are_not_welded():
+    # two coincident copies at rest that the pose separates are two vertices (a cut, not a seam)
+    v, f = box()
+    sv, sf = _split_every_face(v, f)
+    posed = sv.copy()
+    posed[0] += [0.0, 0.0, 0.3]
+    r = quality(sv, posed, sf)
+    assert r["closed"] is False and r["position_count"] == len(v) + 1
+
+
+def test_polygons_and_triangles_are_counted_apart():
+    # a unit square as one quad (fan: two triangles) plus a triangle: 2 polygons, 3 triangles
+    v = np.array([[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0], [2, 0, 0]], float)
+    f = np.array([[0, 1, 2], [0, 2, 3], [1, 4, 2]])
+    r = quality(v, v + [0, 0, 0.1], f, polygons=[4, 3])
+    assert (r["polygon_count"], r["triangle_count"]) == (2, 3)
+    assert quality(v, v, f)["polygon_count"] == 3
+    with pytest.raises(ValueError, match="^polygons: 2 polygons make 4 triangles"):
+        quality(v, v, f, polygons=[4, 4])
