@@ -1,19 +1,23 @@
-"""Drag-update benchmark: ``python -m benchmarks.drag [n_vertices]``.
+"""Drag-update benchmark: ``python -m benchmarks.drag [n_vertices ...]``.
 
-One frame of a grab drag in the viewer does three things, timed here separately on a
-generated wavy torus (:func:`benchmarks.picking.wavy_torus`) in a headless OpenGL context:
+One drag event of the viewer's default grab (radius 0.12 of the model's diagonal, ``wide``
+falloff, whose far field reaches every vertex) on a generated wavy torus
+(:func:`benchmarks.picking.wavy_torus`), timed in parts:
 
-1. brush: :meth:`viewer.session.Session.drag`, i.e. the gesture, the brush and its
-   ``reach(tol)``, and the preview displacement ``response @ move`` with the grab response
-   (``brushes.Grab.response``) computed once per press, put back in vertex order;
-2. normals: float32 positions and area-weighted vertex normals through the sparse
-   vertex-face operator (:class:`viewer.render.NormalField`, formulas of :mod:`brushes.surface`);
+1. brush: the exact stroke the release will commit, ``Brush.apply`` with the flow on every
+   vertex (:mod:`viewer.tools.strokes`), as the preview worker computes it;
+2. normals: the worker's vertex normals of that result, recomputed only around vertices that
+   moved more than the preview tolerance (:meth:`viewer.render.NormalField.update`);
 3. upload: positions and normals replaced in place with ``glBufferSubData``, then
-   ``glFinish`` so the copy has really happened.
+   ``glFinish`` so the copy has really happened (headless OpenGL);
+4. ui: what a drag event costs the window's thread when the preview runs on the worker
+   (:class:`viewer.session.Session` with ``threaded=True``: the gesture and the request);
+5. refit: the picking refit after the stroke is committed (:meth:`viewer.picking.Picker.refit`).
 
-The brush is the viewer's default (radius 0.12 of the model's diagonal, ``wide`` falloff),
-whose far field reaches every vertex at the preview tolerance: nothing is skipped, the worst
-case of a drag. Run it alone; timings on a shared machine are noisy.
+Each is reported in milliseconds and as a ratio to ``np.add(vertices, 1.0, out=buf)`` over
+the same (n, 3) float64 vertex array, timed in the same process, so the ratios say how much
+work a part is regardless of the machine's speed. Run it alone; timings on a shared machine
+are noisy (medians of ``repeats`` events).
 """
 
 from __future__ import annotations
@@ -24,10 +28,21 @@ import time
 
 import numpy as np
 
-__all__ = ["bench_drag"]
+__all__ = ["bench_drag", "SIZES"]
+
+SIZES = (200_000, 655_000, 1_000_000)
 
 
-def bench_drag(n_vertices=200_000, *, repeats=30):
+def _median_ms(fn, repeats):
+    times = []
+    for _ in range(repeats):
+        t = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t)
+    return 1e3 * statistics.median(times)
+
+
+def bench_drag(n_vertices=200_000, *, repeats=10):
     """Median times of the parts of one grab-drag update over ``repeats`` drag events.
 
     Parameters
@@ -35,17 +50,16 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
     n_vertices : int
         About this many vertices (the torus grid rounds it).
     repeats : int, keyword-only
-        Drag events timed (after one warm-up event, which computes the grab response).
+        Drag events timed after one warm-up event.
 
     Returns
     -------
     dict
-        ``n_vertices``, ``n_faces``, ``reach_fraction`` (share of vertices inside
-        ``reach(tol)`` at the last event), ``press_s`` (the first drag event, which computes
-        the response), and medians in milliseconds: ``brush_ms``, ``normals_ms``,
-        ``upload_ms``, ``total_ms`` (the three measured together per event) and ``cpu_ms``
-        (the process's CPU time for the same work: on a busy machine, where other processes
-        stretch the wall-clock times, it is the better measure of the work itself).
+        ``n_vertices``, ``n_faces``, ``add_ms`` (the baseline), medians in milliseconds
+        ``brush_ms``, ``normals_ms``, ``upload_ms``, ``ui_ms``, ``refit_ms``, the same divided
+        by ``add_ms`` under ``*_ratio``, ``moved_fraction`` (share of vertices whose normals
+        were recomputed at the last event) and ``exact`` (largest gap between the last preview
+        and the committed positions, relative to the stroke's largest motion).
     """
     from benchmarks.picking import wavy_torus
     from viewer.session import LEFT, Session
@@ -58,6 +72,9 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
     if repeats < 1:
         raise ValueError(f"repeats: must be >= 1, got {repeats}")
     vertices, faces = wavy_torus(2 * n_vertices)
+    buf = np.empty_like(vertices)
+    add_ms = _median_ms(lambda: np.add(vertices, 1.0, out=buf), max(5 * repeats, 20))
+
     session = Session(vertices, faces, size=(800, 600), journal=False)
     x, y = 400.0, 300.0
     while not session.pick(x, y).hit:  # walk right from the centre to the torus's surface
@@ -71,55 +88,75 @@ def bench_drag(n_vertices=200_000, *, repeats=30):
         from viewer.render import MeshRenderer
         renderer = MeshRenderer(vertices, faces)
         session.press(x, y, LEFT)
-        t = time.perf_counter()
-        session.drag(x + 1, y, 1, 0, LEFT)
-        press_s = time.perf_counter() - t
-        brush_ms, normals_ms, upload_ms, total_ms, cpu_ms = [], [], [], [], []
+        session.drag(x + 1, y, 1, 0, LEFT)  # warm-up: compiles or loads the kernels
+        brush, normals, upload, moved = [], [], [], 0.0
         for i in range(1, repeats + 1):
-            c0 = time.process_time()
-            t0 = time.perf_counter()
-            session.drag(x + 1 + 2 * i, y + i, 2, 1, LEFT)
-            t1 = time.perf_counter()
-            positions = session.shown().astype(np.float32)
-            renderer.field.full(positions)
-            t2 = time.perf_counter()
-            renderer.set_positions(positions, normals=renderer.normals)
+            session.drag(x + 1 + 2 * i, y + i, 2, 1, LEFT)  # inline: the exact stroke now
+            budget = session.budget
+            brush.append(budget["brush"])
+            normals.append(budget["normals"])
+            moved = budget["moved"]
+            positions = np.asarray(session.shown(), dtype=np.float32)
+            t = time.perf_counter()
+            renderer.set_positions(positions, normals=session.shown_normals())
             gl.glFinish()
-            t3 = time.perf_counter()
-            cpu_ms.append(1e3 * (time.process_time() - c0))
-            brush_ms.append(1e3 * (t1 - t0))
-            normals_ms.append(1e3 * (t2 - t1))
-            upload_ms.append(1e3 * (t3 - t2))
-            total_ms.append(1e3 * (t3 - t0))
-        drag = session._drag.state
-        reach_fraction = drag.touched_count / len(vertices)
-        session.cancel()
+            upload.append(1e3 * (time.perf_counter() - t))
+        last = np.array(session.shown())
+        end = (x + 1 + 2 * repeats, y + repeats)
+        session.release(*end, LEFT)
+        committed = np.asarray(session.vertices)
+        motion = float(np.abs(committed - vertices).max())
+        exact = float(np.abs(last - committed).max()) / motion
+        refit_ms = _median_ms(lambda: session.picker.refit(committed), 5)
         renderer.delete()
     finally:
         if window is not None:
             window.close()
-    return {
-        "n_vertices": len(vertices), "n_faces": len(faces), "reach_fraction": reach_fraction,
-        "press_s": press_s,
-        "brush_ms": statistics.median(brush_ms), "normals_ms": statistics.median(normals_ms),
-        "upload_ms": statistics.median(upload_ms), "total_ms": statistics.median(total_ms),
-        "cpu_ms": statistics.median(cpu_ms),
+    session.close()
+
+    threaded = Session(vertices, faces, size=(800, 600), journal=False, threaded=True,
+                       picker=session.picker)
+    try:
+        threaded.press(x, y, LEFT)
+        ui = []
+        for i in range(1, repeats + 1):
+            t = time.perf_counter()
+            threaded.drag(x + 1 + 2 * i, y + i, 2, 1, LEFT)
+            ui.append(1e3 * (time.perf_counter() - t))
+        threaded.cancel()
+        threaded.settle()
+    finally:
+        threaded.close()
+
+    result = {
+        "n_vertices": len(vertices), "n_faces": len(faces), "add_ms": add_ms,
+        "brush_ms": statistics.median(brush), "normals_ms": statistics.median(normals),
+        "upload_ms": statistics.median(upload), "ui_ms": statistics.median(ui),
+        "refit_ms": refit_ms, "moved_fraction": moved, "exact": exact,
     }
+    for part in ("brush", "normals", "upload", "ui", "refit"):
+        result[f"{part}_ratio"] = result[f"{part}_ms"] / add_ms
+    return result
 
 
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="python -m benchmarks.drag",
-                                     description="time one grab-drag update of the viewer")
-    parser.add_argument("n_vertices", nargs="?", type=int, default=200_000)
-    parser.add_argument("--repeats", type=int, default=30)
+                                     description="time the parts of one drag update of the viewer")
+    parser.add_argument("n_vertices", nargs="*", type=int, default=list(SIZES))
+    parser.add_argument("--repeats", type=int, default=10)
     args = parser.parse_args(argv)
-    r = bench_drag(args.n_vertices, repeats=args.repeats)
-    print(f"{r['n_vertices']:,} vertices, {r['n_faces']:,} faces; "
-          f"{100 * r['reach_fraction']:.0f}% of vertices within reach; "
-          f"first drag event (grab response) {1e3 * r['press_s']:.0f} ms")
-    print(f"median per drag update: brush {r['brush_ms']:.2f} ms + normals {r['normals_ms']:.2f} ms"
-          f" + upload {r['upload_ms']:.2f} ms = {r['total_ms']:.2f} ms (target <= 16 ms);"
-          f" CPU time {r['cpu_ms']:.2f} ms")
+    print("| vertices | np.add | brush (exact flow) | normals | upload | UI thread | refit | "
+          "normals redone | preview vs commit |")
+    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+    for n in args.n_vertices:
+        r = bench_drag(n, repeats=args.repeats)
+
+        def cell(part):
+            return f"{r[part + '_ms']:.1f} ms ({r[part + '_ratio']:.1f}x)"
+
+        print(f"| {r['n_vertices']:,} | {r['add_ms']:.2f} ms | {cell('brush')} | {cell('normals')} | "
+              f"{cell('upload')} | {cell('ui')} | {cell('refit')} | "
+              f"{100 * r['moved_fraction']:.0f}% | {r['exact']:.1e} |", flush=True)
     return 0
 
 

@@ -363,13 +363,14 @@ def test_what_the_user_sees_pins_legend_turned_faces(tmp_path):
         send(viewer, "on_key_press", key._1, 0)
         drag(viewer, (W / 2 + 40, H / 2), (W / 2 + 190, H / 2))
         send(viewer, "on_mouse_motion", 5, 5, 0, 0)           # cursor off the model: no ring
+        warning = s.message                                   # before F2 says what it did
         send(viewer, "on_key_press", key.F2, 0)
         image = frame(viewer)
         pin = s.camera.project(s.pins[0], W, H)
         x, y, w, h = viewer.legend_box()
         print(json.dumps({{"flipped": s.status()["flipped"], "pin": pin.tolist(),
                           "legend": [x, y, w, h], "pin_pixels": PIN_PIXELS,
-                          "message": s.message, "status": viewer.status.text}}))
+                          "message": warning, "status": viewer.status.text}}))
         np.save({str(tmp_path / "frame.npy")!r}, image)
     """)
     state = json.loads(out.strip().splitlines()[-1])
@@ -409,3 +410,61 @@ def test_what_the_user_sees_pins_legend_turned_faces(tmp_path):
     model = left_half[np.abs(left_half - bg).max(axis=2) > 10]
     assert len(model) > 200
     assert _contrast(np.median(model, axis=0), bg) >= 3.0
+
+
+def test_loading_bar_progress_lines_and_a_help_panel_that_leaves_the_model_visible(ball):
+    out = _run(f"""
+        import io, sys
+        from viewer import palette
+        from viewer.app import LoadingBar
+        err, sys.stderr = sys.stderr, io.StringIO()
+        viewer = open_viewer({str(ball)!r}, size=(640, 400), visible=False)
+        printed, sys.stderr = sys.stderr.getvalue(), err
+        W, H = 640, 400
+        bg = np.round(np.array(palette.BACKGROUND) * 255)
+
+        def model_mask(image):
+            return np.abs(image.astype(int) - bg).max(axis=2) > 3
+
+        bar = LoadingBar(viewer.window)
+        bar.draw(0.5, "indexing the surface for picking")
+        data = pyglet.image.get_buffer_manager().get_color_buffer().get_image_data()
+        rgba = np.frombuffer(data.get_data("RGBA", data.width * 4), np.uint8)
+        loading = rgba.reshape(data.height, data.width, 4)[::-1, :, :3].copy()
+        box = bar.box()
+        plain = frame(viewer)
+        send(viewer, "on_key_press", key.F1, 0)
+        helped = frame(viewer)
+        p = viewer.panel
+        np.save({str(ball.parent / "shots.npy")!r}, np.stack([loading, plain, helped]))
+        print(json.dumps({{"printed": printed, "box": list(box),
+                          "panel": [p.x, p.y, p.width, p.height]}}))
+    """)
+    state = json.loads(out.strip().splitlines()[-1])
+    loading, plain, helped = np.load(ball.parent / "shots.npy").astype(int)
+    height = loading.shape[0]
+    from viewer import palette
+    bg = np.round(np.array(palette.BACKGROUND) * 255)
+
+    # The terminal got the bar, stage by stage, up to 100%.
+    assert "pliant view: [" in state["printed"] and "100%  ready" in state["printed"]
+
+    # The window's bar: filled (ring colour) on its left half, empty on its right half.
+    x, y, w, h = state["box"]
+    row = int(height - (y + h / 2))
+    fill = np.round(np.array(palette.BRUSH_RING) * 255)
+    assert np.abs(loading[row, int(x + 0.25 * w)] - fill).max() <= 2
+    assert np.abs(loading[row, int(x + 0.75 * w)] - fill).max() > 40
+
+    # With the help panel open the model slides clear of it: about as many model pixels are
+    # seen outside the panel as without the panel, and the panel covers next to none.
+    def model(image):
+        return np.abs(image - bg).max(axis=2) > 3
+
+    px, py, pw, ph = state["panel"]
+    top, bottom = int(height - (py + ph)), int(height - py)
+    inside = np.zeros(plain.shape[:2], bool)
+    inside[top:bottom, int(px):int(px + pw)] = True
+    seen_plain = model(plain).sum()
+    seen_helped = (model(helped) & ~inside).sum()
+    assert seen_helped >= 0.9 * seen_plain

@@ -137,6 +137,24 @@ def test_frame_all_puts_the_box_in_view():
             xy, ndc_z = window_from_matrices(cam, corners, width, height)
             assert np.all(xy >= 0) and np.all(xy <= [width, height])
             assert np.all((ndc_z > -1) & (ndc_z < 1))  # between the near and far planes
+            # Tight: some corner sits on the 5% margin of the limiting side (the box fits,
+            # not the sphere round it). Reference: the matrices' own projection above.
+            half = np.array([width, height]) / 2
+            reach = (np.abs(xy - half) / half).max()
+            assert reach == pytest.approx(1 / 1.05, rel=1e-5)  # the matrices are float32
+
+
+def test_a_tall_figure_fills_the_height():
+    # Front view of a box 0.4 wide, 2 tall, 0.4 deep in an 800 x 600 window: its top edge
+    # lands at the 5% margin, 600/2 + 300/1.05 = 585.7 (hand-computed); framing its bounding
+    # sphere instead would leave it near 300 + 300 * 2 / (2 * 1.05 * 1.08) ~ 565 or lower.
+    cam = OrbitCamera(yaw=0.0, pitch=0.0)
+    lo, hi = np.array([-0.2, -1.0, -0.2]), np.array([0.2, 1.0, 0.2])
+    cam.frame(lo, hi, aspect=800 / 600)
+    corners = np.array([[x, y, z] for x in (lo[0], hi[0]) for y in (lo[1], hi[1]) for z in (lo[2], hi[2])])
+    xy, _ = window_from_matrices(cam, corners, 800, 600)
+    assert xy[:, 1].max() == pytest.approx(300 + 300 / 1.05, rel=1e-5)
+    assert xy[:, 1].min() == pytest.approx(300 - 300 / 1.05, rel=1e-5)
 
 
 def test_orbit_pan_zoom():
@@ -191,3 +209,23 @@ def test_bad_input():
         look_at([0, 0, 0], [0, 1, 0], [0, 1, 0])
     with pytest.raises(ValueError, match="far"):
         perspective(1.0, 1.0, 2.0, 1.0)
+
+
+def test_lens_shift_moves_the_picture_and_keeps_rays_and_matrices_in_step():
+    # An off-centre frustum: every projected point slides by shift * width / 2 window units,
+    # the ray through a window point still passes through the world points projected there,
+    # and the matrices (checked against the rays by the glViewport rule above) agree.
+    rng = np.random.default_rng(9)
+    cam = random_camera(rng)
+    points = cam.target + rng.normal(size=(20, 3)) * 0.3
+    plain = cam.project(points, W, H)
+    cam.shift_x = 0.4
+    shifted = cam.project(points, W, H)
+    np.testing.assert_allclose(shifted[:, 0] - plain[:, 0], 0.4 * W / 2, atol=1e-9)
+    np.testing.assert_allclose(shifted[:, 1], plain[:, 1], atol=1e-9)
+    xy, _ = window_from_matrices(cam, points, W, H)
+    np.testing.assert_allclose(xy, shifted, atol=2e-3)  # float32 matrices
+    for p, (x, y) in zip(points, shifted):
+        origin, direction = cam.ray(x, y, W, H)
+        off = (p - origin) - ((p - origin) @ direction) * direction
+        assert np.linalg.norm(off) < 1e-9

@@ -75,6 +75,23 @@ def test_undo_redo_events_hand_checked(mesh):
     assert read_journal(j.path) == [grab(0), grab(2)]
 
 
+def test_a_normal_close_is_recorded_and_recognised(mesh):
+    from viewer.journal import ended_cleanly
+    with Journal(mesh, REST) as j:
+        j.append(grab(0))
+        j.end()
+    events = read_events(j.path)[1]
+    assert [e["event"] for e in events] == ["stroke", "closed"] and ended_cleanly(events)
+    assert read_journal(j.path) == [grab(0)]  # "closed" changes no stroke
+    with Journal(mesh, REST, resume=True) as j:  # the next session goes on: not clean again
+        j.append(grab(1))
+    events = read_events(j.path)[1]
+    assert not ended_cleanly(events) and read_journal(j.path) == [grab(0), grab(1)]
+    empty = Journal(mesh.with_name("other.obj"), REST)
+    empty.end()  # nothing recorded, so no file is made
+    assert find_journal(mesh.with_name("other.obj")) is None
+
+
 def test_torn_last_line_is_ignored_and_cut_before_resuming(mesh):
     with Journal(mesh, REST) as j:
         j.append(grab(0))

@@ -265,3 +265,25 @@ def test_rays_through_vertices_and_edges_never_slip_through(backend):
     for target in targets:
         origin = rng.normal(size=3) * 3 + target * 4
         assert p.pick(origin, target - origin).hit
+
+
+def test_leaf_tables_of_both_backends_agree():
+    # The numba tables (two linear passes) against the numpy ones (sorting), on a mesh with
+    # an unused vertex; and every leaf's vertices are exactly the corners of its triangles.
+    from viewer.picking import _leaf_tables_numpy, _numba_kernels
+    mesh = trimesh.creation.icosphere(subdivisions=2)
+    vertices = np.vstack([mesh.vertices, [[5.0, 5.0, 5.0]]])
+    picker = Picker(vertices, mesh.faces, leaf_size=4, backend="numpy")
+    rng = np.random.default_rng(2)
+    faces_sorted = mesh.faces[rng.permutation(len(mesh.faces))]
+    expected = _leaf_tables_numpy(faces_sorted, len(vertices), 4, picker.n_leaves)
+    order, faces_local, ptr, members = expected
+    np.testing.assert_array_equal(order[faces_local], faces_sorted)
+    for leaf in range(picker.n_leaves):
+        corners = faces_local[4 * leaf:4 * leaf + 4].ravel()
+        np.testing.assert_array_equal(members[ptr[leaf]:ptr[leaf + 1]], np.unique(corners))
+    kernels = _numba_kernels()
+    if kernels is None:
+        pytest.skip("numba is not importable here, so only the numpy tables were checked")
+    for got, want in zip(kernels["tables"](faces_sorted, len(vertices), 4, picker.n_leaves), expected):
+        np.testing.assert_array_equal(got, want)

@@ -170,9 +170,10 @@ def test_bench_drag_runs_headless():
     # A tiny run of the drag benchmark in a fresh process (pyglet headless must come first).
     code = ("from benchmarks.drag import bench_drag;"
             "r = bench_drag(3000, repeats=3);"
-            "print(r['n_vertices'], r['reach_fraction'], r['total_ms'] > 0)")
+            "print(r['n_vertices'], r['exact'], r['brush_ratio'] > 0)")
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True,
                          text=True, timeout=1800)  # a hang guard, not a speed limit
     assert out.returncode == 0, out.stderr[-2000:]
-    n, fraction, positive = out.stdout.split()
-    assert int(n) >= 3000 and 0 < float(fraction) <= 1 and positive == "True"
+    n, exact, positive = out.stdout.split()
+    # The benchmark's own check: the last preview is the committed stroke (to 1e-6 of the motion).
+    assert int(n) >= 3000 and float(exact) <= 1e-6 and positive == "True"

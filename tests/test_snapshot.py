@@ -57,13 +57,13 @@ def pictures(tmp_path_factory):
         d = Path({str(folder)!r})
         v, f = np.load(d / "sphere_v.npy"), np.load(d / "sphere_f.npy")
         bounds = np.array([v.min(0), v.max(0)])
-        snapshot(v, f, d / "sphere.png", size=(160, 120), view="front,zoom=1.5")
+        snapshot(v, f, d / "sphere.png", size=(160, 120), view="front")
         edited = v.copy()
         top = edited[:, 1] > 0.3
         edited[top, 1] += 0.5   # lift the cap of the sphere
-        snapshot(edited, f, d / "edited.png", size=(160, 120), view="front,zoom=1.5",
+        snapshot(edited, f, d / "edited.png", size=(160, 120), view="front",
                  bounds=bounds)
-        snapshot(v, f, d / "overlay.png", size=(160, 120), view="front,zoom=1.5",
+        snapshot(v, f, d / "overlay.png", size=(160, 120), view="front",
                  magnitude=np.linalg.norm(edited - v, axis=1))
         bv, bf = np.load(d / "box_v.npy"), np.load(d / "box_f.npy")
         snapshot(bv, bf, d / "box_front.png", size=(200, 200), view="front,fov=30")
@@ -89,13 +89,13 @@ def test_png_has_requested_size_and_background_where_no_mesh(pictures):
 
 def test_sphere_covers_the_area_a_pinhole_camera_predicts(pictures):
     # Independent prediction by hand (pinhole projection): the frame-all rule documented in
-    # viewer.camera puts the eye at D = R / sin(fov/2) for the bounding sphere of the box,
-    # R = half its diagonal times 1.05; zoom 1.5 divides D by 1.5. A unit sphere at distance D
-    # looks like a disc of angular radius asin(1/D), i.e. tan(asin(1/D)) / tan(fov/2) half
-    # picture heights.
+    # viewer.camera backs off until every corner of the box fits inside the view shrunk by
+    # 1.05. Seen from the front, the unit sphere's box [-1, 1]^3 has its near corners 1 closer
+    # than the centre and 1 above it, and the 160 x 120 picture is limited by its height, so
+    # D = 1 + 1.05 / tan(fov/2). A unit sphere at distance D looks like a disc of angular
+    # radius asin(1/D), i.e. tan(asin(1/D)) / tan(fov/2) half picture heights.
     fov = math.radians(40.0)
-    box_radius = math.sqrt(3.0) * 1.05  # unit sphere: box [-1, 1]^3, half-diagonal sqrt(3)
-    distance = box_radius / math.sin(fov / 2) / 1.5
+    distance = 1 + 1.05 / math.tan(fov / 2)
     radius_px = 60 * math.tan(math.asin(1 / distance)) / math.tan(fov / 2)
     expected = math.pi * radius_px**2
     covered = _mesh_mask(pictures["sphere"]).sum()

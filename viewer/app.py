@@ -14,17 +14,17 @@ Run ``python -m viewer.app --bindings`` to print the bindings as a Markdown tabl
 
 from __future__ import annotations
 
-import os
 import sys
 
 import numpy as np
 
 from viewer import overlay, palette
-from viewer.session import BINDINGS, Session, sphere_mesh
+from viewer.loading import MODEL_NAME, TerminalProgress, load_model, load_session
+from viewer.session import BINDINGS
 
-__all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "BINDINGS", "MODEL_NAME"]
+__all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "LoadingBar", "BINDINGS",
+           "MODEL_NAME"]
 
-MODEL_NAME = "mascot.obj"
 TITLE = "pliant"
 #: Diameter of a pin marker's brass disc in pixels (a 3-pixel dark rim goes round it).
 PIN_PIXELS = 14.0
@@ -32,40 +32,6 @@ PIN_PIXELS = 14.0
 
 class ViewerError(RuntimeError):
     """The viewer window cannot be opened (no display, no OpenGL 3.3)."""
-
-
-def _bundled_model():
-    """Path of the bundled mascot, or None when it is not installed."""
-    from brushes.demo import model_dirs
-    for folder in model_dirs():
-        candidate = folder / MODEL_NAME
-        if candidate.is_file():
-            return candidate
-    return None
-
-
-def load_model(mesh_path=None):
-    """What to open, as keyword arguments of :class:`viewer.session.Session` plus
-    ``vertices`` and ``faces``.
-
-    mesh_path : str or os.PathLike or None
-        A mesh file (outputs and journal beside it); None opens the bundled mascot (outputs
-        and journal in the current folder, nothing written into the package), or a generated
-        sphere when the model is not installed (outputs in the current folder, no journal).
-    """
-    from brushes.formats import load_mesh
-    if mesh_path is not None:
-        doc = load_mesh(mesh_path)
-        return {"vertices": doc.vertices, "faces": doc.faces, "doc": doc,
-                "mesh_path": os.fspath(mesh_path)}
-    bundled = _bundled_model()
-    if bundled is not None:
-        doc = load_mesh(bundled)
-        return {"vertices": doc.vertices, "faces": doc.faces, "doc": doc,
-                "mesh_path": str(bundled), "out_dir": os.getcwd(),
-                "journal_anchor": os.path.join(os.getcwd(), MODEL_NAME)}
-    vertices, faces = sphere_mesh()
-    return {"vertices": vertices, "faces": faces, "out_dir": os.getcwd(), "journal": False}
 
 
 class Viewer:
@@ -76,9 +42,12 @@ class Viewer:
     window : pyglet.window.Window
         Its OpenGL context must be current.
     session : viewer.session.Session
+    field : viewer.render.NormalField, optional
+        Normals of the session's shown shape, already computed (see
+        :func:`viewer.loading.load_session`); computed here when omitted.
     """
 
-    def __init__(self, window, session):
+    def __init__(self, window, session, field=None):
         import pyglet
         from pyglet.window import key
 
@@ -86,9 +55,13 @@ class Viewer:
 
         self.window = window
         self.session = session
-        self.mesh = MeshRenderer(session.shown(), session.faces)
+        self.mesh = MeshRenderer(session.shown(), session.faces, field=field)
+        # Positions at which each vertex's normals were last computed: only vertices that
+        # have moved more than the session's tolerance since then get new normals.
+        self._normal_basis = np.array(session.shown(), dtype=np.float32)
         self.markers = MarkerRenderer()
         self._shown_version = session.shown_version
+        self._synced = False
         self._markers_version = None
         self._key = key
         self.keys = key.KeyStateHandler()
@@ -197,13 +170,30 @@ class Viewer:
         start = self.session.clock()
         self.draw()
         self.session.tick(self.session.clock() - start)
+        self.session.budget["draw"] = 1e3 * (self.session.clock() - start) - (
+            self.mesh.timings["normals"] + self.mesh.timings["upload"] if self._synced else 0.0)
 
     # ------------------------------------------------------------------ drawing
     def sync(self):
         """Upload what changed in the session since the last frame."""
         session = self.session
+        session.poll()  # the newest exact preview, if the worker finished one
+        self._synced = False
         if session.shown_version != self._shown_version:
-            self.mesh.set_positions(session.shown())
+            positions = np.asarray(session.shown(), dtype=np.float32)
+            normals = session.shown_normals()
+            if normals is not None:  # computed with the preview, off this thread
+                self._normal_basis[:] = positions
+                self.mesh.set_positions(positions, normals=normals)
+            else:
+                moved = np.flatnonzero(np.abs(positions - self._normal_basis).max(axis=1)
+                                       > session.tolerance)
+                self._normal_basis[moved] = positions[moved]
+                self.mesh.set_positions(positions, moved=moved)
+                session.budget["normals"] = self.mesh.timings["normals"]
+                session.budget["moved"] = len(moved) / max(len(positions), 1)
+            session.budget["upload"] = self.mesh.timings["upload"]
+            self._synced = True
             self._shown_version = session.shown_version
             if self.mesh.show_magnitude:
                 self.mesh.set_magnitude(session.magnitude())
@@ -227,6 +217,9 @@ class Viewer:
         session = self.session
         self.sync()
         width, height = self.window.get_size()
+        # With the help panel open, slide the picture right so the model clears it.
+        shift = (self.help.content_width + 36) / width if session.show_help else 0.0
+        session.camera.shift_x = min(shift, 0.9)
         gl.glClearColor(*palette.BACKGROUND, 1.0)
         self.window.clear()
         camera = session.camera
@@ -262,20 +255,28 @@ class Viewer:
             self.help.draw()
 
 
-def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True):
+def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True,
+                progress=True):
     """Open a viewer window (without running the event loop) and return its :class:`Viewer`.
+
+    The window opens first and shows a progress bar (also printed on the terminal, see
+    :class:`viewer.loading.TerminalProgress`) while the mesh is read, indexed and shaded on a
+    worker thread; the window keeps handling its events meanwhile.
 
     Parameters
     ----------
     mesh_path : str or os.PathLike or None
-        See :func:`load_model`.
+        See :func:`viewer.loading.load_model`.
     recover : bool, keyword-only
         Replay the journal of an interrupted session at once (without asking).
     size : (width, height), keyword-only
     visible : bool, keyword-only
         False for tests and headless use.
+    progress : bool, keyword-only
+        Print the progress bar on the terminal (stderr) too.
     """
-    model = load_model(mesh_path)
+    import threading
+
     try:
         import pyglet
         import pyglet.window
@@ -284,13 +285,82 @@ def open_viewer(mesh_path=None, *, recover=False, size=(1280, 800), visible=True
         raise ViewerError(f"the viewer window cannot open ({type(exc).__name__}: {exc}); it "
                           "needs a desktop session with OpenGL 3.3 (for pictures without a "
                           "window use pliant snapshot)") from None
-    session = Session(model.pop("vertices"), model.pop("faces"), size=window.get_size(), **model)
+    bar = LoadingBar(window)
+    terminal = TerminalProgress() if progress else None
+    state = {"fraction": 0.0, "text": "starting", "result": None, "error": None}
+    lock = threading.Lock()
+
+    def report(fraction, text):
+        with lock:
+            state["fraction"], state["text"] = fraction, text
+        if terminal is not None:
+            terminal(fraction, text)
+
+    def work():
+        try:
+            state["result"] = load_session(mesh_path, size=window.get_size(), progress=report)
+        except BaseException as exc:  # handed to the main thread, raised there
+            state["error"] = exc
+
+    worker = threading.Thread(target=work, name="pliant-load", daemon=True)
+    worker.start()
+    while worker.is_alive():
+        window.dispatch_events()
+        with lock:
+            fraction, text = state["fraction"], state["text"]
+        bar.draw(fraction, text)
+        window.flip()
+        worker.join(1 / 30)  # about 30 redraws a second while loading
+    if state["error"] is not None:
+        window.close()
+        raise state["error"]
+    session, field = state["result"]
     if recover:
         try:
             session.message = session.recover()
         except ValueError as exc:  # a damaged journal, or one recorded for another mesh
             session.message = f"recovery failed: {exc}"
-    return Viewer(window, session)
+    window.switch_to()
+    return Viewer(window, session, field)
+
+
+class LoadingBar:
+    """The progress bar drawn in the window while a mesh loads (see :func:`open_viewer`)."""
+
+    WIDTH, HEIGHT = 360, 12
+
+    def __init__(self, window):
+        import pyglet
+        self.window = window
+        self.batch = pyglet.graphics.Batch()
+        rim = tuple(int(255 * c) for c in palette.PANEL)
+        fill = tuple(int(255 * c) for c in palette.BRUSH_RING)
+        text = tuple(int(255 * c) for c in palette.TEXT) + (255,)
+        self.rim = pyglet.shapes.Rectangle(0, 0, self.WIDTH + 4, self.HEIGHT + 4, color=rim,
+                                           batch=self.batch)
+        self.fill = pyglet.shapes.Rectangle(0, 0, 0, self.HEIGHT, color=fill, batch=self.batch)
+        self.label = pyglet.text.Label("", font_size=11, color=text, anchor_x="center",
+                                       batch=self.batch)
+
+    def box(self):
+        """(x, y, width, height) of the bar in window units (centred)."""
+        width, height = self.window.get_size()
+        return ((width - self.WIDTH) / 2, height / 2 - self.HEIGHT / 2, self.WIDTH, self.HEIGHT)
+
+    def draw(self, fraction, text):
+        """Clear the window and draw the bar ``fraction`` in [0, 1] full, ``text`` above it."""
+        from pyglet import gl
+        x, y, w, h = self.box()
+        f = min(max(float(fraction), 0.0), 1.0)
+        self.rim.position = (x - 2, y - 2)
+        self.fill.position = (x, y)
+        self.fill.width = max(f * w, 0.0)
+        self.label.text = f"{text}  {100 * f:.0f}%"
+        self.label.position = (x + w / 2, y + h + 10, 0)
+        self.window.switch_to()
+        gl.glClearColor(*palette.BACKGROUND, 1.0)
+        self.window.clear()
+        self.batch.draw()
 
 
 def _make_window(pyglet, size, visible):

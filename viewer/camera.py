@@ -115,6 +115,10 @@ class OrbitCamera:
     fov_y : vertical field of view, radians.
     near_ratio, far_ratio : the clip planes sit at ``distance * near_ratio`` and
         ``distance * far_ratio``, so zooming keeps the depth precision (common practice).
+    shift_x : lens shift, in normalized device units: the picture slides right by
+        ``shift_x * width / 2`` window units without turning the camera (an off-centre
+        frustum); the viewer slides the model clear of its help panel this way. Rays,
+        projections and the projection matrix all include it.
     """
 
     target: np.ndarray = field(default_factory=lambda: np.zeros(3))
@@ -124,6 +128,7 @@ class OrbitCamera:
     fov_y: float = math.radians(45.0)
     near_ratio: float = 0.01
     far_ratio: float = 100.0
+    shift_x: float = 0.0
 
     def __post_init__(self):
         self.target = checks.vector("target", self.target)
@@ -170,8 +175,14 @@ class OrbitCamera:
         return look_at(self.eye(), self.target, WORLD_UP)
 
     def projection_matrix(self, aspect):
-        """(4, 4) float32 eye -> clip matrix, as ``gluPerspective(fov_y, aspect, near, far)``."""
-        return perspective(self.fov_y, aspect, self.near, self.far)
+        """(4, 4) float32 eye -> clip matrix, as ``gluPerspective(fov_y, aspect, near, far)``,
+        followed by the lens shift (``ndc_x += shift_x``)."""
+        m = perspective(self.fov_y, aspect, self.near, self.far)
+        if self.shift_x:
+            m = m.astype(np.float64)
+            m[0] += float(self.shift_x) * m[3]  # x_clip += shift * w_clip
+            m = m.astype(np.float32)
+        return m
 
     # -- interaction ---------------------------------------------------------------------
     def orbit(self, dx, dy, *, radians_per_pixel=0.01):
@@ -201,8 +212,12 @@ class OrbitCamera:
         """Aim at the box centre and back off until the whole box is in view (frame all).
 
         bounds_min, bounds_max : (3,) float64 corners of an axis-aligned box.
-        The distance makes the box's bounding sphere (radius times ``margin``) fit inside the
-        narrower of the vertical and horizontal fields of view; yaw and pitch are kept.
+        The distance is the smallest at which every corner of the box projects inside the
+        view shrunk by ``margin`` (1.05: 5% free on the limiting side), for the current yaw
+        and pitch: with the corner at ``(a, b, c)`` along (right, up, towards the eye) from the
+        centre, its depth is ``distance - c``, and it is in view when ``|a| <= tan(fov_x/2) *
+        depth / margin`` and ``|b| <= tan(fov_y/2) * depth / margin``. So a tall figure fills
+        the picture's height rather than the circle round its bounding sphere.
         """
         lo = checks.vector("bounds_min", bounds_min)
         hi = checks.vector("bounds_max", bounds_max)
@@ -210,11 +225,20 @@ class OrbitCamera:
             raise checks.FieldError("bounds_max", "must be >= bounds_min on every axis")
         aspect = checks.positive("aspect", aspect)
         margin = checks.positive("margin", margin)
-        radius = max(0.5 * float(np.linalg.norm(hi - lo)) * margin, 1e-9)
-        half_y = self.fov_y / 2
-        half_x = math.atan(math.tan(half_y) * aspect)
-        self.target = 0.5 * (lo + hi)
-        self.distance = radius / math.sin(min(half_y, half_x))
+        tan_y = math.tan(self.fov_y / 2)
+        tan_x = tan_y * aspect
+        center = 0.5 * (lo + hi)
+        corners = np.array([[x, y, z] for x in (lo[0], hi[0]) for y in (lo[1], hi[1])
+                            for z in (lo[2], hi[2])]) - center
+        a = corners @ self.right()
+        b = corners @ self.up()
+        c = corners @ -self.view_axis()
+        need = c + margin * np.maximum(np.abs(a) / tan_x, np.abs(b) / tan_y)
+        # Every corner also stays beyond the near plane (distance * near_ratio).
+        near_ok = c.max() / max(1.0 - self.near_ratio, 1e-6)
+        extent = float(np.linalg.norm(hi - lo))
+        self.target = center
+        self.distance = max(float(need.max()), near_ok * (1 + 1e-9), 1e-9 * max(extent, 1.0), 1e-9)
 
     # -- rays and projection -------------------------------------------------------------
     def ray(self, px, py, width, height):
@@ -223,7 +247,7 @@ class OrbitCamera:
         Returns ``origin`` (3,) float64 (the eye) and ``direction`` (3,) float64 of unit length.
         """
         width, height = _window(width, height)
-        ndc_x = 2.0 * float(px) / width - 1.0
+        ndc_x = 2.0 * float(px) / width - 1.0 - float(self.shift_x)
         ndc_y = 2.0 * float(py) / height - 1.0
         t = math.tan(self.fov_y / 2)
         d = self.view_axis() + ndc_x * t * (width / height) * self.right() + ndc_y * t * self.up()
@@ -246,7 +270,7 @@ class OrbitCamera:
         depth = rel @ self.view_axis()
         t = math.tan(self.fov_y / 2)
         with np.errstate(divide="ignore", invalid="ignore"):
-            ndc_x = (rel @ self.right()) / (depth * t * (width / height))
+            ndc_x = (rel @ self.right()) / (depth * t * (width / height)) + float(self.shift_x)
             ndc_y = (rel @ self.up()) / (depth * t)
         out = np.stack([(ndc_x + 1) * 0.5 * width, (ndc_y + 1) * 0.5 * height], axis=1)
         out[depth <= 0] = np.nan

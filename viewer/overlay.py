@@ -23,7 +23,9 @@ def status_lines(status):
         From :meth:`viewer.session.Session.status`: keys ``tool``, ``radius``, ``falloff``,
         ``poisson``, ``mirror`` (axis name or None), ``vertices``, ``volume_change``
         (ratio or None), ``flipped`` (faces turned over since load), ``frame_ms`` (float or
-        None), ``pins``, ``strokes``, ``redo``, ``message`` (str or empty).
+        None), ``budget`` (dict of milliseconds: ``brush``, the exact preview on the worker;
+        ``normals``, ``upload``, ``draw``; and ``moved``, the share of vertices whose normals
+        were recomputed), ``pins``, ``strokes``, ``redo``, ``message`` (str or empty).
 
     Returns
     -------
@@ -40,6 +42,13 @@ def status_lines(status):
         f" (+{status.get('redo', 0)} to redo)"
         + (f"   draw {frame:.1f} ms" if frame is not None else ""),
     ]
+    budget = status.get("budget") or {}
+    if budget:
+        parts = [f"{name} {budget[name]:.1f}" for name in ("brush", "normals", "upload", "draw")
+                 if budget.get(name) is not None]
+        moved = budget.get("moved")
+        lines.append("frame ms: " + "   ".join(parts)
+                     + (f"   (normals redone for {100 * moved:.0f}% of vertices)" if moved is not None else ""))
     if status.get("message"):
         lines.append(status["message"])
     return lines

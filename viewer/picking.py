@@ -155,6 +155,22 @@ def _refit_numpy(vertices, faces_sorted, n_leaves, leaf_size, lo, hi):
         size //= 2
 
 
+def _leaf_tables_numpy(faces_sorted, n, leaf_size, n_leaves):
+    """Vertex order (first use along the sorted faces, unused vertices last), the sorted faces
+    in local indices, and each leaf's distinct local vertices as CSR (ptr, indices)."""
+    m = len(faces_sorted)
+    corners = faces_sorted.reshape(-1)
+    used, first = np.unique(corners, return_index=True)
+    order = np.concatenate([used[np.argsort(first, kind="stable")], np.setdiff1d(np.arange(n), used)])
+    local = np.empty(n, dtype=np.int64)
+    local[order] = np.arange(n)
+    faces_local = np.ascontiguousarray(local[faces_sorted])
+    slots = np.repeat(np.arange(m, dtype=np.int64) // leaf_size, 3)
+    keys = np.unique(slots * n + faces_local.reshape(-1))
+    leaf_of, leaf_vertices = np.divmod(keys, n)
+    return order, faces_local, np.searchsorted(leaf_of, np.arange(n_leaves + 1)), leaf_vertices
+
+
 # -- numpy traversal -------------------------------------------------------------------------
 def _slab_numpy(lo, hi, o, inv, t_max):
     """Entry distance of the ray into each box, inf where it misses (boxes (k, 3))."""
@@ -217,18 +233,22 @@ def _make_numba_kernels(numba):
     njit = numba.njit(cache=True, nogil=True)
 
     @njit
-    def refit(vertices, faces_sorted, n_leaves, leaf_size, lo, hi):
-        m = faces_sorted.shape[0]
+    def refit(source, vertex_order, vertices, leaf_ptr, leaf_vertices, n_leaves, lo, hi):
+        # Copy the positions into leaf order (so the leaves below read neighbouring memory),
+        # then each leaf's box from the distinct vertices of its triangles, then the inner
+        # nodes, bottom up. One thread: on a machine whose other core is busy, a parallel
+        # loop waits for it and is slower, and the pass is memory-bound anyway.
+        for i in range(vertex_order.shape[0]):
+            k = vertex_order[i]
+            vertices[i, 0], vertices[i, 1], vertices[i, 2] = source[k, 0], source[k, 1], source[k, 2]
         for leaf in range(n_leaves):
             x0 = y0 = z0 = np.inf
             x1 = y1 = z1 = -np.inf
-            start = leaf * leaf_size
-            for k in range(start, min(start + leaf_size, m)):
-                for c in range(3):
-                    vi = faces_sorted[k, c]
-                    x, y, z = vertices[vi, 0], vertices[vi, 1], vertices[vi, 2]
-                    x0, y0, z0 = min(x0, x), min(y0, y), min(z0, z)
-                    x1, y1, z1 = max(x1, x), max(y1, y), max(z1, z)
+            for j in range(leaf_ptr[leaf], leaf_ptr[leaf + 1]):
+                vi = leaf_vertices[j]
+                x, y, z = vertices[vi, 0], vertices[vi, 1], vertices[vi, 2]
+                x0, y0, z0 = min(x0, x), min(y0, y), min(z0, z)
+                x1, y1, z1 = max(x1, x), max(y1, y), max(z1, z)
             node = n_leaves + leaf
             lo[node, 0], lo[node, 1], lo[node, 2] = x0, y0, z0
             hi[node, 0], hi[node, 1], hi[node, 2] = x1, y1, z1
@@ -336,7 +356,52 @@ def _make_numba_kernels(numba):
             return best_k, np.inf, best_u, best_v
         return best_k, best_t, best_u, best_v
 
-    return {"refit": refit, "pick": pick}
+    @njit
+    def tables(faces_sorted, n, leaf_size, n_leaves):
+        # The same tables as _leaf_tables_numpy, in two linear passes (no sorting).
+        m = faces_sorted.shape[0]
+        local = np.full(n, -1, np.int64)
+        order = np.empty(n, np.int64)
+        count = 0
+        for k in range(m):
+            for c in range(3):
+                vi = faces_sorted[k, c]
+                if local[vi] < 0:
+                    local[vi] = count
+                    order[count] = vi
+                    count += 1
+        for vi in range(n):
+            if local[vi] < 0:
+                local[vi] = count
+                order[count] = vi
+                count += 1
+        faces_local = np.empty((m, 3), np.int64)
+        for k in range(m):
+            for c in range(3):
+                faces_local[k, c] = local[faces_sorted[k, c]]
+        ptr = np.zeros(n_leaves + 1, np.int64)
+        members = np.empty(3 * m, np.int64)
+        total = 0
+        for leaf in range(n_leaves):
+            ptr[leaf] = total
+            start = total
+            for k in range(leaf * leaf_size, min((leaf + 1) * leaf_size, m)):
+                for c in range(3):
+                    vi = faces_local[k, c]
+                    seen = False
+                    for j in range(start, total):
+                        if members[j] == vi:
+                            seen = True
+                            break
+                    if not seen:
+                        members[total] = vi
+                        total += 1
+            # Sorted within the leaf, as np.unique gives them.
+            members[start:total] = np.sort(members[start:total])
+        ptr[n_leaves] = total
+        return order, faces_local, ptr, members[:total].copy()
+
+    return {"refit": refit, "pick": pick, "tables": tables}
 
 
 # -- the picker ------------------------------------------------------------------------------
@@ -351,7 +416,7 @@ class Picker:
     and order, besides the copied vertices.
     """
 
-    def __init__(self, vertices, faces, *, leaf_size=4, backend=None):
+    def __init__(self, vertices, faces, *, leaf_size=8, backend=None):
         leaf_size = int(leaf_size)
         if leaf_size < 1:
             raise checks.FieldError("leaf_size", f"must be >= 1, got {leaf_size}")
@@ -373,27 +438,43 @@ class Picker:
 
     def rebuild(self, vertices):
         """Sort the triangles anew (Morton order of the centroids of ``vertices``) and refit."""
-        v = _check_vertices(vertices, getattr(self, "_n_vertices", None))
+        v = np.ascontiguousarray(checks.points("vertices", vertices,
+                                               rows=getattr(self, "_n_vertices", None)))
         self._n_vertices = len(v)
         centroids = v[self._faces].mean(axis=1)
         self.order = np.argsort(morton_codes(centroids), kind="stable")  # sorted slot -> face index
-        self.faces_sorted = np.ascontiguousarray(self._faces[self.order])
+        faces_sorted = self._faces[self.order]
         m = len(self._faces)
         self.n_leaves = 1 << max(0, math.ceil(math.log2(math.ceil(m / self.leaf_size))))
         self.lo = np.empty((2 * self.n_leaves, 3))
         self.hi = np.empty((2 * self.n_leaves, 3))
         self.lo[0], self.hi[0] = np.inf, -np.inf  # node 0 is unused
+        # Vertices are kept in the order the leaves first use them (``vertex_order``: local
+        # index -> caller's index) and the sorted faces name local indices, so neighbouring
+        # leaves read neighbouring memory. Each leaf lists the distinct (local) vertices of
+        # its triangles (CSR ``leaf_ptr``, ``leaf_vertices``), so a refit reads each once.
+        n = len(v)
+        tables = _numba_kernels()["tables"] if self.backend == "numba" else _leaf_tables_numpy
+        self.vertex_order, self.faces_sorted, self.leaf_ptr, self.leaf_vertices = tables(
+            np.ascontiguousarray(faces_sorted), n, self.leaf_size, self.n_leaves)
+        self.vertices = np.empty((n, 3))
         self._refit_boxes(v)
 
     def refit(self, vertices):
-        """Recompute the boxes for moved ``vertices`` ((n, 3) float64, same n, faces unchanged)."""
-        self._refit_boxes(_check_vertices(vertices, self._n_vertices))
+        """Recompute the boxes for moved ``vertices`` ((n, 3) float64, same n, faces unchanged).
+
+        The positions are copied into the picker's own (leaf-ordered) array in the same pass,
+        so the caller may change its array afterwards.
+        """
+        v = checks.points("vertices", vertices, rows=self._n_vertices)
+        self._refit_boxes(np.ascontiguousarray(v))
 
     def _refit_boxes(self, v):
-        self.vertices = v
         if self.backend == "numba":
-            _numba_kernels()["refit"](self.vertices, self.faces_sorted, self.n_leaves, self.leaf_size, self.lo, self.hi)
+            _numba_kernels()["refit"](v, self.vertex_order, self.vertices, self.leaf_ptr,
+                                      self.leaf_vertices, self.n_leaves, self.lo, self.hi)
         else:
+            np.take(v, self.vertex_order, axis=0, out=self.vertices)
             _refit_numpy(self.vertices, self.faces_sorted, self.n_leaves, self.leaf_size, self.lo, self.hi)
 
     def pick(self, origin, direction, *, max_distance=math.inf):

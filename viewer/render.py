@@ -16,6 +16,7 @@ Shaders are module-level strings; the palette is pasted in from :mod:`viewer.pal
 """
 
 import ctypes
+import time
 
 import numpy as np
 
@@ -80,7 +81,8 @@ class NormalField:
         """Recompute the normals around the vertices ``moved`` ((k,) int) only.
 
         Returns the (j,) int64 indices of the vertices whose normals were rewritten (the
-        corners of every face that uses a moved vertex).
+        corners of every face that uses a moved vertex; every vertex when more than a quarter
+        moved, which is recomputed in one full pass).
         """
         from brushes import surface
         v = _as_f32(vertices, (3,), "vertices")
@@ -89,6 +91,9 @@ class NormalField:
         moved = np.asarray(moved, dtype=np.int64).reshape(-1)
         if moved.size == 0:
             return moved
+        if moved.size > self.n_vertices // 4:  # most of the mesh: one full pass is cheaper
+            self.full(v)
+            return np.arange(self.n_vertices)
         op = self.operator
         touched = np.unique(op[moved].indices)  # faces that use a moved vertex
         self.cross[touched] = surface.face_cross_products(v, self.faces[touched])
@@ -273,13 +278,14 @@ class MeshRenderer:
     recomputes normals with the precomputed operator and replaces both buffers in place.
     """
 
-    def __init__(self, vertices, faces):
+    def __init__(self, vertices, faces, *, field=None):
         from pyglet import gl
         from pyglet.graphics.vertexarray import VertexArray
         from pyglet.graphics.vertexbuffer import BufferObject
 
         vertices = _as_f32(vertices, (3,), "vertices")
-        self.field = NormalField(faces, len(vertices))
+        self.field = field if field is not None else NormalField(faces, len(vertices))
+        self.timings = {"normals": 0.0, "upload": 0.0}  # milliseconds of the last set_positions
         self.faces = self.field.faces
         self.n_vertices = len(vertices)
         self.n_faces = len(self.faces)
@@ -307,7 +313,7 @@ class MeshRenderer:
         self.show_magnitude = False
         self.magnitude_scale = 1.0
         self.hold_strength = 0.65
-        self.set_positions(vertices)
+        self.set_positions(vertices, normals=self.field.normals if field is not None else None)
         self.set_magnitude(None)
         self.set_hold(None)
         self.set_fold(None)
@@ -339,14 +345,19 @@ class MeshRenderer:
         vertices = _as_f32(vertices, (3,), "vertices")
         if len(vertices) != self.n_vertices:
             raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(vertices)}")
+        start = time.perf_counter()
         if normals is not None:
-            self.field.normals[:] = _as_f32(normals, (3,), "normals")
+            if normals is not self.field.normals:
+                self.field.normals[:] = _as_f32(normals, (3,), "normals")
         elif moved is not None:
             self.field.update(vertices, moved)
         else:
             self.field.full(vertices)
+        middle = time.perf_counter()
         self._upload(self._positions, vertices)
         self._upload(self._normals, self.field.normals)
+        self.timings = {"normals": 1e3 * (middle - start),
+                        "upload": 1e3 * (time.perf_counter() - middle)}
 
     def set_magnitude(self, values, *, scale=None):
         """Per-vertex displacement magnitude for the overlay ramp (``None`` clears it).

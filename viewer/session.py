@@ -202,13 +202,21 @@ class Session:
     clock : callable, optional, keyword-only
         Seconds from a monotonic clock (default ``time.monotonic``); it times how long a
         status message stays (tests pass their own clock instead of waiting).
+    threaded : bool, keyword-only
+        Compute drag previews on a background thread (the window: True) or at once inside
+        each drag event (default False: scripts and tests see every result immediately).
+    picker : viewer.picking.Picker, optional, keyword-only
+        A picker already built for ``vertices`` and ``faces`` (the window builds it while
+        showing progress); default: built here.
     """
 
     def __init__(self, vertices, faces, *, doc=None, mesh_path=None, out_dir=None,
-                 size=(1024, 768), journal=True, journal_anchor=None, clock=None):
+                 size=(1024, 768), journal=True, journal_anchor=None, clock=None,
+                 threaded=False, picker=None):
         from brushes.formats import MeshDoc
         from viewer.history import History
         from viewer.picking import Picker
+        from viewer.preview import PreviewWorker
 
         rest = np.array(checks.points("vertices", vertices), dtype=np.float64, order="C", copy=True)
         if len(rest) == 0:
@@ -225,7 +233,11 @@ class Session:
         self.width, self.height = (float(s) for s in size)
 
         self.history = History(rest, self._replay)
-        self.picker = Picker(rest, self.faces)
+        self.picker = picker if picker is not None else Picker(rest, self.faces)
+        self.previews = PreviewWorker(threaded=threaded)
+        #: Milliseconds of the last frame's parts: "brush" (the worker's exact result),
+        #: "normals", "upload" and "draw" (filled in by the window).
+        self.budget = {}
         lo, hi = rest.min(axis=0), rest.max(axis=0)
         self.diagonal = float(np.linalg.norm(hi - lo)) or 1.0
         self.tolerance = PREVIEW_TOLERANCE * self.diagonal
@@ -264,6 +276,8 @@ class Session:
                 self._owners[action] = instance
 
         self._shown = rest.copy()
+        self._shown_normals = None
+        self._worker_field = self._worker_basis = None  # the preview worker's normals
         self.shown_version = 0  # bumped whenever shown() changes
         self.markers_version = 0  # bumped when pins or mask change
         self._committed_volume = self.volume_rest
@@ -406,6 +420,7 @@ class Session:
             "vertices": len(self.rest),
             "volume_change": self.volume_change(),
             "frame_ms": self.frame_ms,
+            "budget": dict(self.budget),
             "pins": len(self.pins),
             "flipped": int(np.count_nonzero(self.flipped)),
             "strokes": self.history.position,
@@ -514,17 +529,90 @@ class Session:
                 self.message = result
 
     # ------------------------------------------------------------------ what tools call
-    def show(self, points):
-        """Draw ``points`` ((n, 3) float64, kept by reference) instead of the committed shape."""
+    def show(self, points, *, normals=None):
+        """Draw ``points`` ((n, 3) float64, kept by reference) instead of the committed shape;
+        ``normals`` ((n, 3) float32) are theirs when already computed."""
         self._shown = points
+        self._shown_normals = normals
         self.shown_version += 1
 
     def restore(self):
         """Draw the committed shape again (after a preview)."""
         self.show(np.array(self.history.points))
 
-    def commit(self, stroke):
+    def request_preview(self, key, job):
+        """Ask the preview worker for ``job()`` ((n, 3) positions) under ``key`` =
+        ``(stroke id, ...)``; the result is shown by :meth:`poll` while that stroke is the
+        drag in progress (at once when not ``threaded``). The worker also computes the
+        vertex normals of the result, off the UI thread, recomputing them only around
+        vertices that moved more than :attr:`tolerance` since their normals were last
+        computed (:meth:`viewer.render.NormalField.update`)."""
+        self.previews.submit(key, self._with_normals(job))
+        if not self.previews.threaded:
+            self.poll()
+
+    def _with_normals(self, job):
+        def run():
+            start = time.perf_counter()
+            points = job()
+            middle = time.perf_counter()
+            normals, moved = self._preview_normals(points)
+            return {"points": points, "normals": normals, "moved": moved,
+                    "brush_ms": 1e3 * (middle - start),
+                    "normals_ms": 1e3 * (time.perf_counter() - middle)}
+        return run
+
+    def _preview_normals(self, points):
+        """Normals of ``points`` from the worker's own :class:`viewer.render.NormalField`
+        (called on the worker thread only). Returns ``(normals (n, 3) float32 copy, share of
+        vertices whose normals were recomputed)``."""
+        from viewer.render import NormalField
+        positions = np.asarray(points, dtype=np.float32)
+        if self._worker_field is None:
+            self._worker_field = NormalField(self.faces, len(self.rest))
+            self._worker_field.full(positions)
+            self._worker_basis = positions.copy()
+            return self._worker_field.normals.copy(), 1.0
+        moved = np.flatnonzero(np.abs(positions - self._worker_basis).max(axis=1) > self.tolerance)
+        changed = self._worker_field.update(positions, moved)
+        self._worker_basis[moved] = positions[moved]
+        if len(changed) == len(positions):
+            self._worker_basis[:] = positions
+        return self._worker_field.normals.copy(), len(moved) / len(positions)
+
+    def shown_normals(self):
+        """(n, 3) float32 unnormalised vertex normals of :meth:`shown` when a preview
+        brought them along, else None (the window computes them)."""
+        return self._shown_normals
+
+    def poll(self):
+        """Show the newest finished preview of the drag in progress, if there is a new one
+        (the window calls this every frame). Returns True when the shown shape changed."""
+        result = self.previews.latest()
+        drag = self._drag
+        if result is None or drag is None or drag.mode != "tool":
+            return False
+        if result.key[0] != getattr(drag.state, "id", None):
+            return False  # a late result of a stroke already finished or cancelled
+        if result.error is not None:
+            self.say(f"stroke refused: {result.error}")
+            return False
+        value = result.value
+        self.budget.update(brush=value["brush_ms"], normals=value["normals_ms"],
+                           moved=value["moved"])
+        self.show(value["points"], normals=value["normals"])
+        return True
+
+    def settle(self):
+        """Wait until the preview worker is idle and show its newest result (tests and
+        benchmarks; waits on the worker's condition, not on a clock)."""
+        self.previews.idle()
+        return self.poll()
+
+    def commit(self, stroke, *, points=None):
         """Apply one recipe stroke (dict): history, journal, picking and the shown shape.
+        ``points`` ((n, 3) float64) is the stroke's result when the caller has it already
+        (the last preview): it must be exactly the stroke's replay.
 
         When the stroke turns faces over, the status line says how many, and when they lie
         where a mask's weight changes it says that the mask is why (:func:`brushes.flow.apply`:
@@ -532,11 +620,13 @@ class Session:
         though the flow ``phi`` itself cannot fold).
         """
         before, start = self.flipped.copy(), self.history.points
-        points = self.history.push(stroke)
+        same = points is not None and points is self._shown
+        normals = self._shown_normals if same else None
+        points = self.history.push(stroke, points=points)
         if self.journal is not None:
             self.journal.append(stroke)
             self.pending_recovery = None
-        self._after_change(points)
+        self._after_change(points, normals)
         new = self.flipped & ~before
         if new.any():
             self.say(_fold_message(int(new.sum()), self._mask_turned(stroke, start, new)))
@@ -549,21 +639,31 @@ class Session:
     def _set_tool(self, tool):
         self.cancel()
         self.tool = tool
-        self.message = ""
+        self.say(self.tools[tool].summary)
+
+    def _radius(self, factor):
+        lo, hi = 1e-4 * self.diagonal, 2.0 * self.diagonal
+        self.radius = min(max(self.radius * factor, lo), hi)
+        limit = " (the smallest)" if self.radius == lo else " (the largest)" if self.radius == hi else ""
+        self.say(f"brush radius {self.radius:.3g}{limit}")
 
     def _do_radius_down(self):
-        self.radius = max(self.radius * 0.8, 1e-4 * self.diagonal)
+        self._radius(0.8)
 
     def _do_radius_up(self):
-        self.radius = min(self.radius * 1.25, 2.0 * self.diagonal)
+        self._radius(1.25)
 
     def _do_falloff_next(self):
         self.falloff = FALLOFFS[(FALLOFFS.index(self.falloff) + 1) % len(FALLOFFS)]
+        self.say(f"falloff {self.falloff}")
 
     def _poisson_step(self, step):
         kind = self.tool if self.tool in POISSON_DEFAULTS else "grab"
         lo, hi = POISSON_RANGE
         self.poisson[kind] = round(min(max(self.poisson[kind] + step, lo), hi), 10)
+        limit = (" (the most: incompressible, volume kept)" if self.poisson[kind] == hi
+                 else " (the least)" if self.poisson[kind] == lo else "")
+        self.say(f"Poisson's ratio of the {kind} brush {self.poisson[kind]:.2f}{limit}")
 
     def _do_poisson_down(self):
         self._poisson_step(-0.05)
@@ -573,16 +673,22 @@ class Session:
 
     def _do_mirror_toggle(self):
         self.mirror_on = not self.mirror_on
+        self.say(f"mirror {self.mirror_axis}=0 on" if self.mirror_on else "mirror off")
 
     def _do_mirror_axis(self):
         self.mirror_axis = "xyz"[("xyz".index(self.mirror_axis) + 1) % 3]
+        self.say(f"mirror plane {self.mirror_axis}=0" + ("" if self.mirror_on else
+                                                         " (mirror is off: \\ turns it on)"))
 
     def _do_frame_all(self):
         shown = self._shown
         self.camera.frame(shown.min(axis=0), shown.max(axis=0), aspect=self.width / self.height)
+        self.say("framed the whole model")
 
     def _do_overlay_toggle(self):
         self.show_magnitude = not self.show_magnitude
+        self.say("colours: distance moved from rest (legend top right)" if self.show_magnitude
+                 else "colours: clay")
 
     def _do_help_toggle(self):
         self.show_help = not self.show_help
@@ -596,14 +702,20 @@ class Session:
     def _do_recover(self):
         if self.pending_recovery is not None:
             self._report(self.recover)
+        else:
+            self.say("no interrupted session to replay")
 
     def _do_recover_discard(self):
         if self.pending_recovery is not None:
             self.pending_recovery = None
             self.say("starting afresh: the old journal is replaced by the first stroke")
+        else:
+            self.say("no interrupted session to discard")
 
     def _do_cancel(self):
+        active = self._drag is not None and self._drag.mode == "tool"
         self.cancel()
+        self.say("stroke cancelled" if active else "nothing to cancel")
 
     def _do_quit(self):
         """The window closes itself on this action; the session has nothing to do."""
@@ -635,8 +747,9 @@ class Session:
         still = np.einsum("ij,ij->i", self._rest_cross[faces], cross) < 0.0
         return int(still.sum()) < int(faces.sum())
 
-    def _after_change(self, points):
+    def _after_change(self, points, normals=None):
         self._shown = np.array(points)
+        self._shown_normals = normals
         self.shown_version += 1
         self.picker.refit(self._shown)
         self._committed_volume = signed_volume(self._shown, self.faces)
@@ -703,9 +816,12 @@ class Session:
         """End the session: the journal is removed when everything applied was saved as a
         recipe (or nothing was done), and kept for recovery otherwise, marked as closed
         normally (so the next start does not call it interrupted). Safe to call twice."""
-        if self.journal is None or self._closed:
+        if self._closed:
             return
         self._closed = True
+        self.previews.close()
+        if self.journal is None:
+            return
         unsaved = self.history.position != self.saved_position or (
             self.history.position == 0 and self.pending_recovery is not None)
         if unsaved:

@@ -101,5 +101,7 @@ class Mask(Tool):
         session.markers_changed()
 
     def do_mask_clear(self, session):
+        held = int(np.count_nonzero(session.hold > 0))
         session.hold[:] = 0.0
         session.markers_changed()
+        return f"mask cleared ({held:,} vertices were held)"

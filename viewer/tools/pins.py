@@ -40,5 +40,7 @@ class Pins(Tool):
         return None
 
     def do_pins_clear(self, session):
+        count = len(session.pins)
         session.pins.clear()
         session.markers_changed()
+        return f"removed {count} pin{'s' if count != 1 else ''}"
