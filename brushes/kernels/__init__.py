@@ -19,13 +19,18 @@ from brushes.kernels.backend import (
     grab_reach,
     grab_response,
     gradient_bound,
+    gradient_envelope,
+    handle_profiles,
+    handles_displacement,
     numba_module,
     prefer_sleeping_threads,
+    radial_bound,
     reach_of,
     scales,
 )
 
 __all__ = ["FALLOFFS", "affine_displacement", "affine_jacobian", "affine_magnitude_bound", "affine_map",
            "affine_reach", "backend_name", "beta_of", "center_value", "grab_displacement", "grab_jacobian",
-           "grab_magnitude_bound", "grab_reach", "grab_response", "gradient_bound", "numba_module",
-           "prefer_sleeping_threads", "reach_of", "scales"]
+           "grab_magnitude_bound", "grab_reach", "grab_response", "gradient_bound", "gradient_envelope",
+           "handle_profiles", "handles_displacement", "numba_module",
+           "prefer_sleeping_threads", "radial_bound", "reach_of", "scales"]

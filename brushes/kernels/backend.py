@@ -191,6 +191,103 @@ def grab_response(points, center, eps, weights, beta):
     return K
 
 
+def handles_displacement(points, centers, forces, torques, eps, weights, beta, out=None):
+    """u = sum_j sum_k w_k [A f_j + B (r_j . f_j) r_j + G (tau_j x r_j)] at r_j = x - c_j: (n, 3) float64.
+
+    The forces and twist loads of many handles in one pass over the points (profiles A, B of the
+    grab and G = P - Q of the skew load, per unit a, at s = sqrt(|r_j|^2 + eps[j, k]^2)).
+    centers, forces, torques : (k, 3) float64 (raw loads: no centre normalization);
+    eps : (k, K) float64, the K radii of each handle's falloff; weights : (K,) float64.
+    """
+    pts = _as_points(points)
+    res = _out(out, pts.shape)
+    centers, forces, torques = (np.ascontiguousarray(a, dtype=np.float64) for a in (centers, forces, torques))
+    eps = np.ascontiguousarray(eps, dtype=np.float64)
+    weights = np.ascontiguousarray(weights, dtype=np.float64)
+    funcs = _numba_funcs()
+    fn = funcs[('handles_displacement', eps.shape[1])] if funcs else gen.np_handles_displacement
+    return fn(pts, centers, forces, torques, eps, weights, float(beta), res)
+
+
+def handle_profiles(rr, eps, weights, beta, *, derivatives=False):
+    """Weighted sums over radii of the handle profiles at squared distances rr (m,) float64.
+
+    Returns (A, B, G), or with derivatives=True (A, B, dA, dB, G, dG) with dX = X'(s) / s: each
+    (m,) float64, per unit a. The handle solve's blocks are built from these.
+    """
+    rr = np.asarray(rr, dtype=np.float64)
+    return tuple(gen._profiles_sum(rr, np.asarray(eps, dtype=np.float64), np.asarray(weights, dtype=np.float64),
+                                   float(beta), "handle_j" if derivatives else "handle_u"))
+
+
+_RADIAL = {}
+
+
+def _radial_table(kind, falloff, poisson):
+    """(values (N,), range maxima (N, N): R[i, j] = max(values[i..j])) of RADIAL_BOUNDS, once."""
+    key = (kind, falloff, poisson)
+    if key not in _RADIAL:
+        rows = gen.RADIAL_BOUNDS[kind][falloff]
+        if len(rows) == 1:
+            vals = np.asarray(rows[0])
+        else:
+            i = min(max(bisect.bisect_left(gen.BOUND_NUS, poisson), 1), len(gen.BOUND_NUS) - 1)
+            vals = np.asarray(rows[i]) if gen.BOUND_NUS[i] == poisson else np.maximum(rows[i - 1], rows[i])
+        n = len(vals)
+        ranges = np.zeros((n, n))
+        for i in range(n):
+            ranges[i, i:] = np.maximum.accumulate(vals[i:])
+        _RADIAL[key] = (vals, ranges)
+    return _RADIAL[key]
+
+
+def radial_bound(kind, falloff, poisson, lo, hi):
+    """Bound of ||J||_2 over distances [lo, hi] (radii) from the unit normalized kernel, 'grab' or 'twist'.
+
+    lo, hi : (...) float64, 0 <= lo <= hi (hi may be inf). The unit kernels have radius 1 and unit
+    strength (as `gradient_bound`). The largest entry of `_generated.RADIAL_BOUNDS` at the grid
+    points bracketing [lo, hi] (between two Poisson's ratios, the larger row), and beyond the grid
+    the closed-form `gradient_envelope`.
+    """
+    vals, ranges = _radial_table(kind, falloff, poisson)
+    grid = np.asarray(gen.RADIAL_GRID)
+    lo, hi = np.broadcast_arrays(np.asarray(lo, dtype=np.float64), np.asarray(hi, dtype=np.float64))
+    i = np.clip(np.searchsorted(grid, lo, side="right") - 1, 0, len(grid) - 1)
+    j = np.clip(np.searchsorted(grid, hi, side="left"), 0, len(grid) - 1)
+    out = ranges[i, j]
+    tail = hi > grid[-1]
+    if np.any(tail):
+        eps, w = scales(falloff, 1.0)
+        beta = beta_of(poisson)
+        unit = abs(center_value(kind, eps, w, beta))
+        start = np.maximum(lo[tail], grid[-1])
+        env = gradient_envelope(kind, start[:, None], hi[tail][:, None], eps[None, :], w, beta)[:, 0] / unit
+        out = out.copy()
+        out[tail] = np.maximum(out[tail], env)
+    return out
+
+
+def gradient_envelope(kind, lo, hi, eps, weights, beta):
+    """Bound of ||J||_2 per unit raw load over distances [lo, hi] from one kernel, kind 'grab' or 'twist'.
+
+    The pointwise bound sum_k |w_k| sum_m c_m rho^p t^q (t = 1 / sqrt(rho^2 + eps_k^2); the monomials
+    of derive.gradient_envelopes) is maximized term by term: each monomial peaks once, at
+    rho^2 = p eps^2 / (q - p) (derive.prove_envelope_peaks), so its maximum over [lo, hi] is at
+    that peak clipped into the interval. lo, hi : (J, G) float64 (hi may be inf);
+    eps : (J, K) the radii of J kernels; weights : (K,). Returns (J, G) float64, per unit a.
+    """
+    terms = {"grab": gen.envelope_terms_grab, "twist": gen.envelope_terms_twist}[kind]
+    lo, hi = np.asarray(lo, dtype=np.float64), np.asarray(hi, dtype=np.float64)
+    eps = np.asarray(eps, dtype=np.float64)
+    total = np.zeros(np.broadcast(lo, hi).shape)
+    for k, w in enumerate(weights):
+        e = eps[:, k][:, None]
+        for p, q, c in terms(e, float(beta)):
+            rho = np.clip(e * math.sqrt(p / (q - p)), lo, hi)
+            total += abs(float(w)) * c * rho**p * (rho * rho + e * e) ** (-0.5 * q)
+    return total
+
+
 def grab_magnitude_bound(dist, eps, weights, beta, move_norm):
     """Upper bound of |u| at distance `dist` from a grab's centre, decreasing in `dist`.
 

@@ -23,6 +23,10 @@ What is derived, with sympy:
    the far-field terms of order ``eps^0`` (medium) and also ``eps^2`` (tight).
 7. The maximum over space of each unit kernel's gradient norm (spectral norm; Frobenius-operator
    bound for pinch), tabulated over Poisson's ratio for the flow's step control.
+8. For handles (`brushes.handles`): the twist profile G = P - Q of a skew load, the skew parts of
+   the grab and twist Jacobians that the handle solve matches, pointwise bounds of the gradient
+   norm at a distance from one kernel as sums of monomials with one proved peak each, and a fused
+   kernel summing forces and twist loads at many centres in one pass over the points.
 
 Run ``python -m brushes.kernels.derive --write`` to regenerate `_generated.py` and
 ``python -m brushes.kernels.derive --check`` to re-derive everything in memory, re-run every proof and
@@ -377,9 +381,13 @@ def _rho_grid():
 
 def _grab_bound(fns, ratios, weights, b):
     """sup over space of ||J||_2 for the unit normalized grab (|move| = 1, radius = 1)."""
+    return float(_grab_norms(fns, ratios, weights, b, _rho_grid()).max())
+
+
+def _grab_norms(fns, ratios, weights, b, rho):
+    """||J||_2 of the unit normalized grab at distances rho (n,) and 91 angles between move and r."""
     norm = sum(float(w) * fns["A"](float(q), float(q), b) for w, q in zip(weights, ratios))
     theta = np.linspace(0.0, np.pi / 2, 91)
-    rho = _rho_grid()
     RR, TT = np.meshgrid(rho, theta, indexing="ij")
     A, B, dA, dB = _combined(fns, ("A", "B", "dA", "dB"), RR, ratios, weights, b)
     r = np.stack([RR, 0 * RR, 0 * RR], -1)
@@ -388,7 +396,7 @@ def _grab_bound(fns, ratios, weights, b):
     J = dA[..., None, None] * m[..., :, None] * r[..., None, :] \
         + B[..., None, None] * (r[..., :, None] * m[..., None, :] + rm[..., None, None] * np.eye(3)) \
         + (dB * rm)[..., None, None] * r[..., :, None] * r[..., None, :]
-    return float(np.linalg.norm(J / norm, ord=2, axis=(-2, -1)).max())
+    return np.linalg.norm(J / norm, ord=2, axis=(-2, -1))
 
 
 def _affine_basis(kind):
@@ -412,15 +420,7 @@ def _affine_bound(fns, kind, ratios, weights, b):
     rho = _rho_grid()
     P, Q, S, dP, dQ, dS = _combined(fns, ("P", "Q", "S", "dP", "dQ", "dS"), rho, ratios, weights, b)
     if kind == "twist":
-        # rotation axis at angle t to r; J restricted by symmetry to r along x
-        t = np.linspace(0, np.pi / 2, 91)
-        RR, TT = np.meshgrid(rho, t, indexing="ij")
-        Fs = np.zeros(RR.shape + (3, 3))
-        q = np.stack([np.cos(TT), np.sin(TT), 0 * TT], -1)
-        Fs[..., 0, 1], Fs[..., 0, 2], Fs[..., 1, 2] = -q[..., 2], q[..., 1], -q[..., 0]
-        Fs[..., 1, 0], Fs[..., 2, 0], Fs[..., 2, 1] = q[..., 2], -q[..., 1], q[..., 0]
-        J = _affine_J_numeric(RR, [np.broadcast_to(v[:, None], RR.shape) for v in (P, Q, S, dP, dQ, dS)], Fs)
-        return float(np.linalg.norm(J / c0, ord=2, axis=(-2, -1)).max())
+        return float(_twist_norms(fns, ratios, weights, b, rho).max())
     if kind == "scale":
         Fs = np.broadcast_to(np.eye(3), rho.shape + (3, 3))
         J = _affine_J_numeric(rho, (P, Q, S, dP, dQ, dS), Fs)
@@ -430,6 +430,62 @@ def _affine_bound(fns, kind, ratios, weights, b):
             .reshape(rho.shape + (9,)) for B_ in basis]
     L = np.stack(cols, -1)  # (n, 9, 5)
     return float(np.linalg.norm(L, ord=2, axis=(-2, -1)).max())
+
+
+def _twist_norms(fns, ratios, weights, b, rho):
+    """||J||_2 of the unit normalized twist (1 radian, radius 1) at distances rho (n,) and 91 angles
+    between the rotation axis and r (by symmetry, r along x)."""
+    c0 = sum(float(w) * (fns["P"](float(q), float(q), b) - fns["Q"](float(q), float(q), b))
+             for w, q in zip(weights, ratios))
+    P, Q, S, dP, dQ, dS = _combined(fns, ("P", "Q", "S", "dP", "dQ", "dS"), rho, ratios, weights, b)
+    t = np.linspace(0, np.pi / 2, 91)
+    RR, TT = np.meshgrid(rho, t, indexing="ij")
+    Fs = np.zeros(RR.shape + (3, 3))
+    q = np.stack([np.cos(TT), np.sin(TT), 0 * TT], -1)
+    Fs[..., 0, 1], Fs[..., 0, 2], Fs[..., 1, 2] = -q[..., 2], q[..., 1], -q[..., 0]
+    Fs[..., 1, 0], Fs[..., 2, 0], Fs[..., 2, 1] = q[..., 2], -q[..., 1], q[..., 0]
+    J = _affine_J_numeric(RR, [np.broadcast_to(v[:, None], RR.shape) for v in (P, Q, S, dP, dQ, dS)], Fs)
+    return np.linalg.norm(J / c0, ord=2, axis=(-2, -1))
+
+
+#: Distances (in radii) of the radial bounds: every 0.05 radii to 6, then 5% apart to about 200.
+RADIAL_GRID = tuple(float(v) for v in np.round(np.concatenate([np.arange(0.0, 6.0, 0.05),
+                                                                6.0 * 1.05 ** np.arange(73)]), 6))
+
+
+def _round_up(values, digits=4):
+    """Each value rounded up to `digits` significant digits (a bound stays a bound)."""
+    out = []
+    for v in values:
+        if v <= 0:
+            out.append(0.0)
+            continue
+        scale = 10.0 ** (int(np.floor(np.log10(v))) - digits + 1)
+        out.append(float(np.round(np.ceil(v / scale * (1 - 1e-12)) * scale, 12)))
+    return tuple(out)
+
+
+def radial_bounds():
+    """{kind: {falloff: rows}}: for the unit normalized grab (per Poisson's ratio in BOUND_NUS) and
+    twist (one row: its profile is free of nu), at each distance rho of RADIAL_GRID the largest
+    ||J||_2 over every direction, +2% margin, rounded up. The largest entry over the grid points
+    that bracket an interval of distances bounds the interval (`brushes.kernels.radial_bound`);
+    beyond the grid `brushes.kernels.gradient_envelope` bounds the tail in closed form.
+    """
+    fns = _numeric_profiles()
+    rho = np.asarray(RADIAL_GRID)
+    table = {"grab": {}, "twist": {}}
+    for falloff, ratios in FALLOFF_RATIOS.items():
+        weights = multiscale_weights(ratios)
+        for kind in table:
+            nus = BOUND_NUS if kind == "grab" else BOUND_NUS[-1:]
+            rows = []
+            for n_ in nus:
+                b = 1.0 / (4.0 * (1.0 - n_))
+                norms = (_grab_norms if kind == "grab" else _twist_norms)(fns, ratios, weights, b, rho).max(axis=1)
+                rows.append(_round_up(1.02 * norms))
+            table[kind][falloff] = rows
+    return table
 
 
 def _affine_J_numeric(rho, prof, F):
@@ -480,6 +536,113 @@ def gradient_bounds():
 
 
 # ---------------------------------------------------------------------------------------------
+# Handles: forces and twist loads at several centres, solved together (brushes.handles)
+# ---------------------------------------------------------------------------------------------
+rho = sp.Symbol("rho", nonnegative=True)  # distance from a kernel's centre
+t_var = sp.Symbol("t", positive=True)  # t = 1 / r_eps in the generated code
+
+def _cross_matrix(v):
+    """[v]x as a sympy Matrix: [v]x w == v x w."""
+    return sp.Matrix([[0, -v[2], v[1]], [v[2], 0, -v[0]], [-v[1], v[0], 0]])
+
+
+def twist_profile():
+    """G(s) with u = a G(s) (tau x r), the field of the skew load F = [tau]x: G = P - Q."""
+    P, Q, _S = affine_profiles()
+    return sp.simplify(P - Q)
+
+
+def prove_handle_terms():
+    """The identities the handle solve is built from, with the profiles as free symbols.
+
+    1. a skew load F = [tau]x gives u = (P - Q) tau x r: the twist field is G tau x r;
+    2. the skew part of the grab Jacobian is [(dA - B)/2 (r x m)]x, so a force at one handle
+       turns the material at another by (dA - B)/2 (r x m);
+    3. the skew part of the twist Jacobian is [(G + dG/2 (|r|^2 I - r r^T)) tau]x, dG = dP - dQ.
+    """
+    P, Q, S, dP, dQ, dS, A, B, dA, dB = sp.symbols("P Q S dP dQ dS A B dA dB", real=True)
+    tau = sp.Matrix(sp.symbols("tau1:4", real=True))
+    m = sp.Matrix(sp.symbols("m1:4", real=True))
+    F = _cross_matrix(tau)
+    Fr = F * R
+    u = P * Fr + Q * (F.T * R + F.trace() * R) + S * (R.T * Fr)[0] * R
+    ok = all(sp.expand(e) == 0 for e in u - (P - Q) * tau.cross(R))
+    Jg = grab_jacobian_template(A, B, dA, dB, m)
+    ok &= all(sp.expand(e) == 0 for e in (Jg - Jg.T) / 2 - _cross_matrix((dA - B) / 2 * R.cross(m)))
+    Ja = affine_jacobian_template(P, Q, S, dP, dQ, dS, F)
+    spin = ((P - Q) * sp.eye(3) + (dP - dQ) / 2 * ((R.T * R)[0] * sp.eye(3) - R * R.T)) * tau
+    ok &= all(sp.expand(e) == 0 for e in (Ja - Ja.T) / 2 - _cross_matrix(spin))
+    # and with the derived profiles, dP - dQ is the twist profile's own dG = G'(s) / s
+    P_, Q_, _S = affine_profiles()
+    ok &= sp.simplify(_d_over_s(twist_profile()) - _d_over_s(P_) + _d_over_s(Q_)) == 0
+    return ok
+
+
+def _in_t(expr):
+    """A profile of s written in t = 1 / s and rho (no eps -> e renaming: eps stays eps)."""
+    return sp.expand(sp.simplify(expr).subs(s, 1 / t_var))
+
+
+def _abs_terms(expr):
+    """Sum of the absolute values of the monomials of `expr`, a polynomial in t (and rho) whose
+    coefficients are linear in beta: an upper bound of |expr| for beta in (1/8, 1/2], that is
+    Poisson's ratio in (-1, 1/2]. Returns None if a coefficient changes sign on that range."""
+    total = 0
+    poly = sp.Poly(sp.expand(expr), t_var, rho)
+    for (bt, ar), coeff in poly.terms():
+        lo, hi = (coeff.subs(beta, sp.Rational(1, 8)).subs(eps, 1), coeff.subs(beta, sp.Rational(1, 2)).subs(eps, 1))
+        if lo * hi < 0:
+            return None
+        sign = 1 if (lo + hi) >= 0 else -1
+        total += sign * coeff * t_var**bt * rho**ar
+    return total
+
+
+def gradient_envelopes():
+    """Pointwise bounds, per unit a, of ||J||_2 at distance rho from one unit kernel.
+
+    grab with unit move (J = dA m r^T + B (r m^T + (r.m) I) + dB (r.m) r r^T, dX = X'(s)/s):
+        ||J|| <= |dA| rho + 2 |B| rho + |dB| rho^3;
+    twist with unit tau (J = G [tau]x + dG (tau x r) r^T):
+        ||J|| <= |G| + |dG| rho^2,
+    with |X| the sum of the absolute values of X's monomials in t. Returns {"grab": expr,
+    "twist": expr} in t, rho, eps and beta.
+    """
+    A, B = grab_profiles()
+    G = twist_profile()
+    grab = _abs_terms(_in_t(_d_over_s(A))) * rho + 2 * _abs_terms(_in_t(B)) * rho \
+        + _abs_terms(_in_t(_d_over_s(B))) * rho**3
+    twist = _abs_terms(_in_t(G)) + _abs_terms(_in_t(_d_over_s(G))) * rho**2
+    return {"grab": sp.expand(grab), "twist": sp.expand(twist)}
+
+
+def envelope_terms(kind):
+    """The monomials (p, q, c) of an envelope, c rho^p t^q with c >= 0 (in eps and beta), sorted."""
+    return sorted(((p, q, c) for (q, p), c in sp.Poly(gradient_envelopes()[kind], t_var, rho).terms()),
+                  key=lambda m: (m[0], m[1]))
+
+
+def prove_envelope_peaks():
+    """Each envelope monomial c rho^p t^q has c >= 0 on Poisson's ratio (-1, 1/2], q > p, and one
+    peak over rho >= 0, at rho^2 = p eps^2 / (q - p): rising before it, falling after.
+
+    d/drho [rho^p (rho^2 + eps^2)^(-q/2)] = rho^(p-1) (rho^2 + eps^2)^(-q/2-1) (p eps^2 + (p - q) rho^2),
+    so the maximum of a monomial over an interval is at the peak clipped into the interval.
+    """
+    env = gradient_envelopes()
+    if any(v is None for v in env.values()):
+        return False
+    ok = True
+    for kind in env:
+        for p, q, c in envelope_terms(kind):
+            ok &= q > p and all(c.subs({beta: b_, eps: 1}) >= 0 for b_ in (sp.Rational(1, 8), sp.Rational(1, 2)))
+            mono = rho**p * (rho**2 + eps**2) ** sp.Rational(-q, 2)
+            factor = sp.simplify(sp.diff(mono, rho) / (rho ** (p - 1) * (rho**2 + eps**2) ** sp.Rational(-q - 2, 2)))
+            ok &= sp.expand(factor - (p * eps**2 + (p - q) * rho**2)) == 0
+    return bool(ok)
+
+
+# ---------------------------------------------------------------------------------------------
 # Code generation
 # ---------------------------------------------------------------------------------------------
 HEADER = '''"""GENERATED by `python -m brushes.kernels.derive --write`. DO NOT EDIT BY HAND.
@@ -519,12 +682,22 @@ def _profile_exprs():
     return grab_u, grab_j, aff_u, aff_j
 
 
-def _radii_block(K, cse_text, profiles, totals, indent):
-    """The per-radius profile sums, unrolled over K radii (lets LLVM vectorize the point loop)."""
+def _handle_exprs():
+    """Profiles of the handles' fields: force (A, B) and twist (G), and their derivative terms."""
+    A, B = grab_profiles()
+    G = twist_profile()
+    return [A, B, G], [A, B, _d_over_s(A), _d_over_s(B), G, _d_over_s(G)]
+
+
+def _radii_block(K, cse_text, profiles, totals, indent, radius="e_{k}"):
+    """The per-radius profile sums, unrolled over K radii (lets LLVM vectorize the point loop).
+
+    `radius` is the expression of radius k (``e_{k}`` a hoisted scalar, ``eps[j, {k}]`` per handle).
+    """
     pad = " " * indent
     lines = [f"{pad}{tot} = 0.0" for tot in totals]
     for k in range(K):
-        lines.append(f"{pad}e = e_{k}")
+        lines.append(f"{pad}e = {radius.format(k=k)}")
         lines.append(f"{pad}t = 1.0 / math.sqrt(rr + e * e)")
         lines.append(cse_text)
         lines += [f"{pad}{tot} += w_{k} * {prof}" for tot, prof in zip(totals, profiles)]
@@ -627,6 +800,56 @@ _NUMBA_BODIES = {
 }
 
 
+#: Points per block of the handles kernel: the block's sums stay in cache while each handle's
+#: loop over the block vectorizes (one pass over memory, as for a single brush).
+HANDLES_BLOCK = 512
+
+_HANDLES_BODY = """\
+    def handles_displacement_{K}(points, centers, forces, torques, eps, w, beta, out):
+        n = points.shape[0]
+        k = centers.shape[0]
+{radii_setup}
+        size = {BLOCK}
+        for b in numba.prange((n + size - 1) // size):
+            start = b * size
+            m = min(n, start + size) - start
+            u0 = np.zeros(size)
+            u1 = np.zeros(size)
+            u2 = np.zeros(size)
+            for j in range(k):
+                c0, c1, c2 = centers[j, 0], centers[j, 1], centers[j, 2]
+                f0, f1, f2 = forces[j, 0], forces[j, 1], forces[j, 2]
+                q0, q1, q2 = torques[j, 0], torques[j, 1], torques[j, 2]
+                if q0 != 0.0 or q1 != 0.0 or q2 != 0.0:
+                    for i in range(m):
+                        r0 = points[start + i, 0] - c0
+                        r1 = points[start + i, 1] - c1
+                        r2 = points[start + i, 2] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+{radii_spin}
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        u0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        u1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        u2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                else:
+                    for i in range(m):
+                        r0 = points[start + i, 0] - c0
+                        r1 = points[start + i, 1] - c1
+                        r2 = points[start + i, 2] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+{radii}
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        u0[i] += ta * f0 + rm * r0
+                        u1[i] += ta * f1 + rm * r1
+                        u2[i] += ta * f2 + rm * r2
+            for i in range(m):
+                out[start + i, 0] = u0[i]
+                out[start + i, 1] = u1[i]
+                out[start + i, 2] = u2[i]
+        return out
+"""
+
+
 def _numba_kernels():
     grab_u, grab_j, aff_u, aff_j = _profile_exprs()
     cse = {
@@ -645,6 +868,16 @@ def _numba_kernels():
                 "{radii}", _radii_block(K, cse[which], profs, tots, 12))
             funcs.append("    @numba.njit(**opts)\n" + text)
             names.append(f"    ({name!r}, {K}): {name}_{K},")
+    spin_u = _cse_block(_handle_exprs()[0], ["pa", "pb", "pg"], 24, "g")
+    force_u = _cse_block(grab_u, ["pa", "pb"], 24, "g")
+    for K in counts:
+        setup = "\n".join(f"        w_{k} = w[{k}]" for k in range(K))
+        text = _HANDLES_BODY.replace("{K}", str(K)).replace("{radii_setup}", setup).replace(
+            "{BLOCK}", str(HANDLES_BLOCK)).replace(
+            "{radii_spin}", _radii_block(K, spin_u, ["pa", "pb", "pg"], ["ta", "tb", "tg"], 24, "eps[j, {k}]")).replace(
+            "{radii}", _radii_block(K, force_u, ["pa", "pb"], ["ta", "tb"], 24, "eps[j, {k}]"))
+        funcs.append("    @numba.njit(**opts)\n" + text)
+        names.append(f"    ('handles_displacement', {K}): handles_displacement_{K},")
     return ("\n\ndef _numba_kernels():\n"
             '    """Compile the numba backend: parallel loops over points, radii unrolled per falloff."""\n'
             "    import numba\n\n"
@@ -658,6 +891,8 @@ def _numpy_kernels():
     gj = _cse_block(grab_j, ["pa", "pb", "pda", "pdb"], 12, "g")
     au = _cse_block(aff_u, ["pp", "pq", "ps"], 12, "h")
     aj = _cse_block(aff_j, ["pp", "pq", "ps", "pdp", "pdq", "pds"], 12, "h")
+    hu = _cse_block(_handle_exprs()[0], ["pa", "pb", "pg"], 12, "g")
+    hj = _cse_block(_handle_exprs()[1], ["pa", "pb", "pda", "pdb", "pg", "pdg"], 12, "g")
     fix = lambda t: t.replace("math.sqrt", "np.sqrt")  # noqa: E731
     return f'''
 
@@ -676,9 +911,17 @@ def _profiles_sum(rr, eps, w, beta, which):
         elif which == "affine_u":
 {fix(au)}
             vals = (pp, pq, ps)
-        else:
+        elif which == "affine_j":
 {fix(aj)}
             vals = (pp, pq, ps, pdp, pdq, pds)
+        elif which == "handle_u":
+{fix(hu)}
+            vals = (pa, pb, pg)
+        elif which == "handle_j":
+{fix(hj)}
+            vals = (pa, pb, pda, pdb, pg, pdg)
+        else:
+            raise ValueError(f"which: unknown profile set {{which!r}}")
         vals = [w[k] * v for v in vals]
         totals = vals if totals is None else [acc + v for acc, v in zip(totals, vals)]
     return totals
@@ -730,6 +973,18 @@ def np_affine_jacobian(points, center, F, eps, w, beta, out):
                 + ts[:, None, None] * (rfr[:, None, None] * np.eye(3) + r[:, :, None] * (fr + gr)[:, None, :])
                 + lead[:, :, None] * r[:, None, :])
     return out
+
+
+def np_handles_displacement(points, centers, forces, torques, eps, w, beta, out):
+    out[...] = 0.0
+    for j in range(centers.shape[0]):
+        r = np.subtract(points, centers[j], dtype=np.float64)
+        rr = np.einsum("ij,ij->i", r, r)
+        ta, tb, tg = _profiles_sum(rr, eps[j], w, beta, "handle_u")
+        out += ta[:, None] * forces[j][None, :] + ((r @ forces[j]) * tb)[:, None] * r
+        if np.any(torques[j]):
+            out += tg[:, None] * np.cross(torques[j], r)
+    return out
 '''
 
 
@@ -750,6 +1005,32 @@ def _constants_block():
     lines.append("")
     lines.append("#: Poisson's ratios at which the gradient bounds are tabulated.")
     lines.append(f"BOUND_NUS = {tuple(float(v) for v in BOUND_NUS)!r}")
+    lines.append("")
+    for kind in ("grab", "twist"):
+        lines.append(f"def envelope_terms_{kind}(e, beta):")
+        lines.append(f'    """(p, q, c) of each monomial c rho^p t^q of the {kind} gradient envelope, per unit a, '
+                     'for a kernel of radius e (derive.gradient_envelopes)."""')
+        e_sym = sp.Symbol("e", positive=True)
+        terms = ", ".join(f"({p}, {q}, {sp.pycode(c.subs(eps, e_sym), fully_qualified_modules=False)})"
+                          for p, q, c in envelope_terms(kind))
+        lines.append(f"    return ({terms})")
+        lines.append("")
+    lines.append("")
+    lines.append("#: Distances (radii) of RADIAL_BOUNDS (derive.RADIAL_GRID).")
+    lines.append(f"RADIAL_GRID = {RADIAL_GRID!r}")
+    lines.append("")
+    lines.append("#: Largest ||J||_2 over directions at each distance of RADIAL_GRID for the unit grab (one row per")
+    lines.append("#: nu of BOUND_NUS) and twist (one row), 2% margin, rounded up (derive.radial_bounds).")
+    lines.append("RADIAL_BOUNDS = {")
+    for kind, per in radial_bounds().items():
+        lines.append(f"    {kind!r}: {{")
+        for falloff, rows in per.items():
+            lines.append(f"        {falloff!r}: (")
+            for row in rows:
+                lines.append(f"            {row!r},")
+            lines.append("        ),")
+        lines.append("    },")
+    lines.append("}")
     lines.append("")
     lines.append("#: sup over space of the unit kernels' gradient norm (radius 1, unit strength), 1% margin.")
     lines.append("GRADIENT_BOUNDS = {")
@@ -774,6 +1055,8 @@ PROOFS = {
     "closed-form Jacobians": prove_jacobians,
     "incompressible at nu = 1/2": prove_incompressible,
     "centre constants": prove_center_constants,
+    "handle solve identities": prove_handle_terms,
+    "gradient envelope peaks": prove_envelope_peaks,
 }
 
 
