@@ -6,8 +6,8 @@ Solutions of Elasticity", ACM Trans. Graph. 36(4), 2017). The classes only check
 work out the elastic load that produces what the artist asked for at the brush centre, and
 forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, which imports this
 module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
-What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`, `exact_flow`
-and `pin_clearance`.
+What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`,
+`velocity_lipschitz_at`, `exact_flow`, `pin_clearance` and `pinned`.
 """
 from __future__ import annotations
 
@@ -70,6 +70,22 @@ class Brush:
     def velocity_lipschitz(self):
         """Upper bound of the velocity field's Lipschitz constant over t in [0, 1]."""
         return self.lipschitz()
+
+    def velocity_lipschitz_at(self, t):
+        """Upper bound of the Lipschitz constant of `velocity(., t)` at the one time t.
+
+        A brush whose field changes with t overrides this (Handles re-solves its loads); the flow
+        then checks it at every time an RK4 stage uses. The default is `velocity_lipschitz()`.
+        """
+        return self.velocity_lipschitz()
+
+    def pinned(self, pins, *, flow=True):
+        """This brush holding `pins` (m, 3) with loads of its own, or None (the default).
+
+        None: the flow holds the pins with counter-loads (`brushes.pins`). A brush whose targets
+        the counter-loads would disturb (Handles) returns a brush that solves for the pins too.
+        """
+        return None
 
     def exact_flow(self, points):
         """The time-1 flow map of `velocity` at `points` (n, 3) in closed form, or None.

@@ -14,10 +14,12 @@ More steps are taken where accuracy needs them (`ACCURACY_STEPS_PER_L`).
 Closed forms where the flow has one come from the brush itself (`Brush.exact_flow`: Twist
 turns each point by an angle of its distance, Scale slides points along rays), and so do the
 velocity (`Brush.velocity`: a grab carries its centre along, so the centre lands on center + move),
-its bound (`Brush.velocity_lipschitz`) and the segments pins must keep clear of
-(`Brush.pin_clearance`). This module reads nothing private of any brush, so a subclass or a
-plug-in brush gets the same treatment as the built-in ones. It registers `apply` as the
-integrator behind `Brush.apply` when imported; `brushes.brush` never imports it.
+its bound (`Brush.velocity_lipschitz`, or `Brush.velocity_lipschitz_at` at each stage time when the
+brush overrides it), the segments pins must keep clear of (`Brush.pin_clearance`) and a brush
+that holds the pins itself (`Brush.pinned`; for Handles pins are handles that do not move).
+This module reads nothing private of any brush, so a subclass or a plug-in brush gets the same
+treatment as the built-in ones. It registers `apply` as the integrator behind `Brush.apply` when
+imported; `brushes.brush` never imports it.
 """
 from __future__ import annotations
 
@@ -77,7 +79,11 @@ def apply(brush, points, *, flow=True, pins=None, mask=None, stats=None):
     if pins is not None:
         pins = _pins.check_pins(pins)
         if len(pins):
-            solver = _pin_solver(brush, pins, flow)
+            held = brush.pinned(pins, flow=flow)
+            if held is not None:
+                brush = held
+            else:
+                solver = _pin_solver(brush, pins, flow)
     exact = None
     if not flow:
         stats.steps, stats.evaluations = 1, 1
@@ -95,6 +101,28 @@ def apply(brush, points, *, flow=True, pins=None, mask=None, stats=None):
     return new
 
 
+def _stage_times(n):
+    """The pseudo-times the RK4 stages of n steps evaluate, computed as `_rk4_flow` does."""
+    h = 1.0 / n
+    return sorted({t for i in range(n) for t in (i * h, i * h + 0.5 * h, i * h + h)})
+
+
+def _step_count(brush, extra):
+    """RK4 steps for `brush`'s flow; `extra` bounds the pins' counter-field.
+
+    A brush that bounds its field at each time (`velocity_lipschitz_at` overridden) is checked at
+    exactly the stage times of the step count, which is raised until every stage's bound is served.
+    """
+    if type(brush).velocity_lipschitz_at is _brush.Brush.velocity_lipschitz_at:
+        return steps_for(brush.velocity_lipschitz() + extra)
+    n = steps_for(max(brush.velocity_lipschitz_at(t) for t in (0.0, 0.5, 1.0)) + extra)
+    while True:
+        m = steps_for(max(brush.velocity_lipschitz_at(t) for t in _stage_times(n)) + extra)
+        if m <= n:
+            return n
+        n = m
+
+
 def _rk4_flow(brush, pts, solver, stats):
     """Classical RK4 over t in [0, 1] with fold-free step count; pins hold at every stage.
 
@@ -106,12 +134,12 @@ def _rk4_flow(brush, pts, solver, stats):
             solver.correction(x, solver.loads(brush.velocity(solver.pins, t)), out=v)
         return v
 
-    L = brush.velocity_lipschitz()
+    extra = 0.0
     if solver is not None:
         # the counter-loads vary with t only through the brush's motion: bound them over samples
-        L += 1.25 * max(solver.lipschitz(solver.loads(brush.velocity(solver.pins, t)))
-                        for t in np.linspace(0, 1, 5))
-    n = steps_for(L)
+        extra = 1.25 * max(solver.lipschitz(solver.loads(brush.velocity(solver.pins, t)))
+                           for t in np.linspace(0, 1, 5))
+    n = _step_count(brush, extra)
     stats.steps, stats.evaluations = n, 4 * n
     h = 1.0 / n
     x = np.array(pts, dtype=np.float64, order="C")

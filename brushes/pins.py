@@ -2,7 +2,9 @@
 
 A pinned brush field is the brush's field plus one regularized Kelvinlet (a grab-type point load,
 de Goes & James 2017, eq. 9) at each pin, with loads solved from a small dense system so the total
-field vanishes at every pin. The field stays a sum of elastic solutions.
+field vanishes at every pin. The field stays a sum of elastic solutions. Pins are handles that do
+not move: the solve is the handles' own (`brushes.handles.LoadSolver`), and a Handles brush takes
+its pins into its own solve (`Handles.pinned`) so its handles still reach their targets.
 
 Limits (checked, with a one-line error):
 - a pin closer than `MIN_CENTER_GAP` radii to a grab's centre (or, in flow mode, to the path the
@@ -13,12 +15,11 @@ Limits (checked, with a one-line error):
 from __future__ import annotations
 
 import numpy as np
-import scipy.linalg
 
-from brushes import checks, kernels
+from brushes import checks, handles, kernels
 
-MIN_CENTER_GAP = 0.25
-MAX_CONDITION = 1e10
+MIN_CENTER_GAP = handles.MIN_CENTER_GAP
+MAX_CONDITION = handles.MAX_CONDITION
 
 
 def check_pins(pins):
@@ -26,48 +27,44 @@ def check_pins(pins):
     return np.ascontiguousarray(checks.points("pins", pins, allow_single=True, letter="m"))
 
 
+def _refuse(radius):
+    def refuse(i, j, d):
+        return checks.FieldError(f"pins[{j}]", f"pins {i} and {j} are {d:.3g} apart, closer than the solve can "
+                                 f"separate (keep pins at least {handles.SEPARATION * radius:.3g}, 1e-4 radii, "
+                                 "apart)")
+    return refuse
+
+
 class PinSolver:
     """Counter-loads at `pins` (m, 3) with regularization `radius` and Poisson's ratio `poisson`.
 
-    `correction(points, field_at_pins)` gives the counter-field (n, 3) that cancels `field_at_pins`
-    (m, 3) at the pins; `loads(field_at_pins)` the (m, 3) loads (as grab moves).
+    Pins are handles that do not move: the loads come from the handles' solver
+    (`brushes.handles.LoadSolver`, wide falloff, no twist loads) with targets that cancel the
+    brush's field. `correction(points, loads)` gives the counter-field (n, 3); `loads(field_at_pins)`
+    the (m, 3) loads (as grab moves) that cancel `field_at_pins` (m, 3) at the pins.
     """
 
     def __init__(self, pins, radius, poisson):
         self.pins = check_pins(pins)
         self.radius = float(radius)
         self.poisson = float(poisson)
-        self._eps, w = kernels.scales("wide", self.radius)
-        self._beta = kernels.beta_of(self.poisson)
-        self._w = w / kernels.center_value("grab", self._eps, w, self._beta)
-        m = len(self.pins)
-        M = np.empty((3 * m, 3 * m))
-        for j in range(m):
-            K = kernels.grab_response(self.pins, self.pins[j], self._eps, self._w, self._beta)  # (m, 3, 3)
-            M[:, 3 * j:3 * j + 3] = K.reshape(3 * m, 3)
-        cond = np.linalg.cond(M)
-        if not np.isfinite(cond) or cond > MAX_CONDITION:
-            i, j, d = _closest_pair(self.pins)
-            raise checks.FieldError(f"pins[{j}]", f"pins {i} and {j} are {d:.3g} apart, closer than the solve can separate "
-                             f"(keep pins at least {1e-4 * self.radius:.3g}, 1e-4 radii, apart)")
-        self._lu = scipy.linalg.lu_factor(M)
+        self._solver = handles.LoadSolver(self.pins, self.radius, poisson=self.poisson, falloff="wide",
+                                          refuse=_refuse(self.radius))
         self._unit_bound = kernels.gradient_bound("grab", "wide", self.poisson) / self.radius
 
     def loads(self, field_at_pins):
-        rhs = -np.asarray(field_at_pins, dtype=np.float64).reshape(-1)
-        return scipy.linalg.lu_solve(self._lu, rhs).reshape(-1, 3)
+        return self._solver.solve(-np.asarray(field_at_pins, dtype=np.float64).reshape(-1, 3))[0]
 
     def correction(self, points, loads, out=None):
         """Sum over pins of the grab field with move = load: (n, 3) float64 (added into `out`)."""
-        total = np.zeros((len(points), 3)) if out is None else out
-        buf = np.empty((len(points), 3))
-        for p, f in zip(self.pins, loads):
-            if np.any(f):
-                total += kernels.grab_displacement(points, p, f, self._eps, self._w, self._beta, buf)
-        return total
+        u = self._solver.field(points, (loads, np.zeros_like(loads)))
+        if out is None:
+            return u
+        out += u
+        return out
 
     def lipschitz(self, loads):
-        """Bound of the counter-field's gradient norm for these loads."""
+        """Bound of the counter-field's gradient norm for these loads: the sum of each load's own bound."""
         return float(np.linalg.norm(loads, axis=1).sum()) * self._unit_bound
 
 
@@ -86,12 +83,3 @@ def check_centre_gap(pins, centers, radius):
         i = int(bad[0])
         raise checks.FieldError(f"pins[{i}]", f"pin {i} is {d[i]:.3g} from the grab's centre{' path' if denom else ''}, "
                          f"closer than {MIN_CENTER_GAP} radii: a point cannot both move and stay still")
-
-
-def _closest_pair(pins):
-    if len(pins) < 2:
-        return 0, 0, 0.0
-    d = np.linalg.norm(pins[:, None, :] - pins[None, :, :], axis=-1)
-    np.fill_diagonal(d, np.inf)
-    i, j = np.unravel_index(np.argmin(d), d.shape)
-    return int(min(i, j)), int(max(i, j)), float(d[i, j])
