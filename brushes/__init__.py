@@ -13,10 +13,11 @@ engineering, structural or medical analysis.
 from brushes import flow, registry  # flow registers itself behind Brush.apply
 from brushes.brush import Brush, Grab, Pinch, Scale, Twist
 from brushes.flow import FlowStats
+from brushes.handles import Handles
 from brushes.mirror import Mirrored, mirror
 from brushes.quality import format_quality, quality
 from brushes.recipe import Recipe, RecipeError, Stroke, load_recipe, parse_recipe, recipe_to_dict, save_recipe
 
-__all__ = ["Brush", "FlowStats", "Grab", "Twist", "Scale", "Pinch", "Mirrored", "mirror", "quality", "format_quality",
+__all__ = ["Brush", "FlowStats", "Grab", "Twist", "Scale", "Pinch", "Handles", "Mirrored", "mirror", "quality", "format_quality",
            "registry", "Recipe", "RecipeError", "Stroke", "load_recipe", "parse_recipe", "recipe_to_dict",
            "save_recipe"]

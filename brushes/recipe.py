@@ -446,7 +446,9 @@ class Stroke:
         try:
             return self.brush().apply(pts, flow=self.flow, pins=pins, mask=mask)
         except checks.FieldError as exc:
-            if exc.field.split("[")[0] in ("pins", "mask"):  # the stroke's own fields
+            # the stroke's own fields, and brush fields refused only when applied (a flow whose
+            # handles would meet on their way)
+            if exc.field.split("[")[0] in ("pins", "mask", *self.params):
                 raise RecipeError([str(exc.within(_where))]) from None
             raise
 

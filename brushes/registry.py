@@ -1,8 +1,9 @@
 """Brush registry: brush kind name -> brush class.
 
-The four built-ins (``grab``, ``twist``, ``scale``, ``pinch``) are always there. Other packages
-add brush kinds without touching pliant, through the entry-point group ``pliant.brushes``: the
-entry point's name is the kind, its value ``"module:Class"``. In ``pyproject.toml``::
+The five built-ins (``grab``, ``twist``, ``scale``, ``pinch``, ``handles``) are always there.
+Other packages add brush kinds without touching pliant, through the entry-point group
+``pliant.brushes``: the entry point's name is the kind, its value ``"module:Class"``. In
+``pyproject.toml``::
 
     [project.entry-points."pliant.brushes"]
     ripple = "toyshop_brushes.ripple:Ripple"
@@ -25,7 +26,7 @@ __all__ = ["ENTRY_POINT_GROUP", "register", "unregister", "lookup", "kinds"]
 
 ENTRY_POINT_GROUP = "pliant.brushes"
 
-_BUILTINS = {"grab": "Grab", "twist": "Twist", "scale": "Scale", "pinch": "Pinch"}
+_BUILTINS = {"grab": "Grab", "twist": "Twist", "scale": "Scale", "pinch": "Pinch", "handles": "Handles"}
 _KIND = re.compile(r"[a-z][a-z0-9_-]*\Z")
 
 _classes: dict = {}  # kind -> class: built-ins, register() calls, loaded plugins
@@ -92,9 +93,9 @@ def _discover() -> dict:
 
 
 def _builtin(kind: str):
-    from brushes import brush  # late: the registry imports without the maths
+    from brushes import brush, handles  # late: the registry imports without the maths
 
-    return getattr(brush, _BUILTINS[kind])
+    return getattr(handles if kind == "handles" else brush, _BUILTINS[kind])
 
 
 def kinds() -> list:

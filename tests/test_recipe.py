@@ -185,7 +185,7 @@ def test_missing_required_keys():
     assert p == [f"strokes[0].{k}: missing (required by brush 'twist')"
                  for k in ("center", "radius", "axis", "degrees")]
     assert only_problem(doc({"center": [0, 0, 0]})).startswith(
-        "strokes[0].brush: missing; known brushes: grab, pinch, scale, twist")
+        "strokes[0].brush: missing; known brushes: grab, handles, pinch, scale, twist")
 
 
 def test_unknown_brush_lists_known_ones():

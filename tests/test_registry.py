@@ -117,7 +117,7 @@ def test_builtins_are_the_engine_classes():
 
 
 def test_unknown_kind_lists_known_ones(fresh):
-    with pytest.raises(ValueError, match=r"^brush: unknown brush 'smudge'; known: grab, pinch, "
+    with pytest.raises(ValueError, match=r"^brush: unknown brush 'smudge'; known: grab, handles, pinch, "
                                          r"scale, twist"):
         registry.lookup("smudge")
 
