@@ -9,7 +9,7 @@ import pytest
 import trimesh
 
 from viewer import palette
-from viewer.render import NormalField, ring_points
+from viewer.render import NormalField, moved_rows, ring_points
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -177,3 +177,11 @@ def test_bench_drag_runs_headless():
     n, exact, positive = out.stdout.split()
     # The benchmark's own check: the last preview is the committed stroke (to 1e-6 of the motion).
     assert int(n) >= 3000 and float(exact) <= 1e-6 and positive == "True"
+
+
+def test_moved_rows_hand_case():
+    a = np.array([[0.0, 0, 0], [1, 0, 0], [0, 2, 0]])
+    b = np.array([[0.0, 0, 0], [1, 0, 0.5], [0, 2.09, 0]])
+    # Distances 0, 0.5 and 0.09 (by hand); above 0.1 only the second row.
+    np.testing.assert_array_equal(moved_rows(a, b, 0.1), [1])
+    np.testing.assert_array_equal(moved_rows(a, b, 0.05), [1, 2])

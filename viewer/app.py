@@ -20,6 +20,7 @@ import numpy as np
 
 from viewer import overlay, palette
 from viewer.loading import MODEL_NAME, TerminalProgress, load_model, load_session
+from viewer.render import moved_rows
 from viewer.session import BINDINGS
 
 __all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "LoadingBar", "BINDINGS",
@@ -186,8 +187,7 @@ class Viewer:
                 self._normal_basis[:] = positions
                 self.mesh.set_positions(positions, normals=normals)
             else:
-                moved = np.flatnonzero(np.abs(positions - self._normal_basis).max(axis=1)
-                                       > session.tolerance)
+                moved = moved_rows(positions, self._normal_basis, session.tolerance)
                 self._normal_basis[moved] = positions[moved]
                 self.mesh.set_positions(positions, moved=moved)
                 session.budget["normals"] = self.mesh.timings["normals"]

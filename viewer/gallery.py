@@ -73,7 +73,7 @@ _BODY = (0.0, 0.98, 0.0)
 _HAND_RIGHT = (-0.50, 0.78, 0.07)
 
 _DEFAULT_SIZE = 480
-_ZOOM_FIGURE = 1.2   # the figure is tall and narrow: frame-all fits its bounding sphere
+_ZOOM_FIGURE = 1.0   # frame-all fits the figure's bounding box, with a 5% margin
 
 
 # --------------------------------------------------------------------------- falloff curves
@@ -386,7 +386,7 @@ def render_twist(out, doc, *, size=_DEFAULT_SIZE):
     for name, vertices in shapes.items():
         path = Path(out) / f"twist-{name}.png"
         written.append(snapshot(vertices, doc.faces, path, size=(size, size),
-                                view="top,zoom=1.05", bounds=bounds))
+                                view="top", bounds=bounds))
     return written
 
 

@@ -566,14 +566,14 @@ class Session:
         """Normals of ``points`` from the worker's own :class:`viewer.render.NormalField`
         (called on the worker thread only). Returns ``(normals (n, 3) float32 copy, share of
         vertices whose normals were recomputed)``."""
-        from viewer.render import NormalField
+        from viewer.render import NormalField, moved_rows
         positions = np.asarray(points, dtype=np.float32)
         if self._worker_field is None:
             self._worker_field = NormalField(self.faces, len(self.rest))
             self._worker_field.full(positions)
             self._worker_basis = positions.copy()
             return self._worker_field.normals.copy(), 1.0
-        moved = np.flatnonzero(np.abs(positions - self._worker_basis).max(axis=1) > self.tolerance)
+        moved = moved_rows(positions, self._worker_basis, self.tolerance)
         changed = self._worker_field.update(positions, moved)
         self._worker_basis[moved] = positions[moved]
         if len(changed) == len(positions):
