@@ -655,3 +655,13 @@ def test_every_key_does_something_the_user_can_see(session):
         before = seen()
         assert session.key(symbol, bits) == action
         assert seen() != before, key
+
+
+def test_the_mirror_ring_follows_the_stroke_not_a_key_pressed_mid_drag(session):
+    _drag(session, (W / 2 + 40, H / 2), (W / 2 + 60, H / 2))
+    session.key("BACKSLASH")               # mirror on for the next stroke
+    assert session.mirror_outline() is None  # this stroke has no mirror
+    session.release(W / 2 + 60, H / 2, LEFT)
+    assert "mirror" not in session.history.applied[0]
+    session.motion(W / 2 + 40, H / 2)
+    assert session.mirror_outline() is not None

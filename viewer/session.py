@@ -356,6 +356,10 @@ class Session:
         nothing there worth showing).
         """
         plane, outline = self.mirror_plane(), self.brush_outline()
+        drag = self._drag
+        if drag is not None and drag.mode == "tool" and hasattr(drag.state, "mirror"):
+            mirror = drag.state.mirror  # the stroke's own plane, fixed at the press
+            plane = None if mirror is None else (np.asarray(mirror["normal"]), np.asarray(mirror["point"]))
         if plane is None or outline is None:
             return None
         (normal, point), (center, radius) = plane, outline
