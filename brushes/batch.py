@@ -254,26 +254,62 @@ def run_batch(recipe, tasks: Sequence[tuple[str, str]], *, jobs: int | None = No
     return _run_pool(recipe, tasks, jobs, on_start, on_done)
 
 
+class _Interrupts:
+    """Ctrl-C noted as a flag while the pool runs, raised as KeyboardInterrupt only between waits.
+
+    A KeyboardInterrupt raised at an arbitrary point of the main thread can land inside
+    `concurrent.futures.wait` while it holds the futures' locks; the pool's manager thread then
+    blocks on them forever and the command never exits (seen under load). The handler only
+    records the signal; the loop wakes at least every `POLL` seconds to look at it.
+    """
+
+    POLL = 0.2
+
+    def __init__(self):
+        self.seen = False
+        self._previous = None
+
+    def __enter__(self):
+        import threading
+
+        if threading.current_thread() is threading.main_thread():
+            self._previous = signal.signal(signal.SIGINT, self._note)
+        return self
+
+    def _note(self, signum, frame):
+        self.seen = True
+
+    def __exit__(self, *exc):
+        if self._previous is not None:
+            signal.signal(signal.SIGINT, self._previous)
+        return False
+
+
 def _run_pool(recipe, tasks, jobs, on_start, on_done) -> list[Outcome]:
     results: dict[int, Outcome] = {}
     threads = max(1, (os.cpu_count() or 1) // jobs)
     pool = ProcessPoolExecutor(max_workers=jobs, mp_context=_pool_context(),
                                initializer=_start_worker, initargs=(threads,))
     try:
-        pending = {pool.submit(pose_file, recipe, src, dst): i
-                   for i, (src, dst) in enumerate(tasks)}
-        on_start()
-        while pending:
-            done, _ = wait(pending, return_when=FIRST_COMPLETED)
-            for future in done:
-                i = pending.pop(future)
-                try:
-                    outcome = future.result()
-                except BrokenProcessPool:
-                    src, dst = tasks[i]
-                    outcome = Outcome(src, dst, "worker process stopped unexpectedly", 0.0)
-                results[i] = outcome
-                on_done(outcome)
+        with _Interrupts() as interrupts:
+            pending = {pool.submit(pose_file, recipe, src, dst): i
+                       for i, (src, dst) in enumerate(tasks)}
+            on_start()
+            while pending and not interrupts.seen:
+                done, _ = wait(pending, timeout=_Interrupts.POLL, return_when=FIRST_COMPLETED)
+                for future in done:
+                    i = pending.pop(future)
+                    try:
+                        outcome = future.result()
+                    except BrokenProcessPool:
+                        src, dst = tasks[i]
+                        outcome = Outcome(src, dst, "worker process stopped unexpectedly", 0.0)
+                    results[i] = outcome
+                    on_done(outcome)
+            if interrupts.seen:
+                # cancel what has not started; the running meshes finish their atomic writes
+                pool.shutdown(wait=True, cancel_futures=True)
+                raise KeyboardInterrupt
     except BaseException:
         pool.shutdown(wait=True, cancel_futures=True)
         raise

@@ -528,12 +528,20 @@ def test_ctrl_c_exits_130_and_leaves_only_whole_files(files, tmp_path, jobs, sta
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             env=env(), start_new_session=True,
                             preexec_fn=_ignore_sigint if started == "background" else None)
-    deadline = time.monotonic() + 120
-    while time.monotonic() < deadline and not (out.is_dir() and len(list(out.glob("*.obj"))) >= 3):
-        time.sleep(0.05)
-    # Ctrl-C in a terminal sends SIGINT to the whole foreground process group
-    os.killpg(proc.pid, signal.SIGINT)
-    stdout, stderr = proc.communicate(timeout=120)
+    try:
+        # wait for the event (three finished meshes), bounded only so a broken run cannot hang
+        deadline = time.monotonic() + 600
+        while time.monotonic() < deadline and not (out.is_dir() and len(list(out.glob("*.obj"))) >= 3):
+            if proc.poll() is not None:
+                break
+            time.sleep(0.05)
+        # Ctrl-C in a terminal sends SIGINT to the whole foreground process group
+        os.killpg(proc.pid, signal.SIGINT)
+        stdout, stderr = proc.communicate(timeout=600)
+    finally:
+        if proc.poll() is None:  # never leave a hung batch and its workers behind
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.communicate()
     assert proc.returncode == 130, (stdout, stderr)
     assert stderr.strip().splitlines() == ["pliant: interrupted"]
     written = sorted(out.glob("*.obj"))
