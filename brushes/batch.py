@@ -139,7 +139,7 @@ def pose_document(recipe, doc):
     groups = _groups(doc)
     for i, stroke in enumerate(recipe.strokes):
         before = out
-        out = stroke.apply(out, groups=groups, _where=f"strokes[{i}]")
+        out = stroke.apply(out, groups=groups, where=f"strokes[{i}]")
         if size <= 0 or not len(out):
             continue
         moved = np.linalg.norm(out - before, axis=1)

@@ -435,21 +435,22 @@ class Stroke:
             w[members] = 1.0
         return w
 
-    def apply(self, points, *, groups=None, _where="stroke"):
+    def apply(self, points, *, groups=None, where="stroke"):
         """Apply the stroke. points : (n, 3) float -> (n, 3) float64 new positions.
 
-        Exactly ``self.brush().apply(points, flow=flow, pins=pins, mask=weights)``.
+        Exactly ``self.brush().apply(points, flow=flow, pins=pins, mask=weights)``. `where`
+        names the stroke in errors (``"strokes[3]"`` gives ``strokes[3].pins[1]: ...``).
         """
         pts = checks.points("points", points)
         pins = None if self.pins is None else np.asarray(self.pins, dtype=np.float64)
-        mask = self.weights(len(pts), groups=groups, where=_where)
+        mask = self.weights(len(pts), groups=groups, where=where)
         try:
             return self.brush().apply(pts, flow=self.flow, pins=pins, mask=mask)
         except checks.FieldError as exc:
             # the stroke's own fields, and brush fields refused only when applied (a flow whose
             # handles would meet on their way)
             if exc.field.split("[")[0] in ("pins", "mask", *self.params):
-                raise RecipeError([str(exc.within(_where))]) from None
+                raise RecipeError([str(exc.within(where))]) from None
             raise
 
 
@@ -480,7 +481,7 @@ class Recipe:
         pts = checks.points("points", points)
         out = pts.copy()
         for i, stroke in enumerate(self.strokes):
-            out = stroke.apply(out, groups=groups, _where=f"strokes[{i}]")
+            out = stroke.apply(out, groups=groups, where=f"strokes[{i}]")
         return out
 
 
