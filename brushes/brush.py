@@ -7,7 +7,7 @@ work out the elastic load that produces what the artist asked for at the brush c
 forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, which imports this
 module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
 What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`,
-`velocity_lipschitz_at`, `exact_flow`, `pin_clearance` and `pinned`.
+`velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `pin_clearance` and `pinned`.
 """
 from __future__ import annotations
 
@@ -17,6 +17,7 @@ import math
 import numpy as np
 
 from brushes import checks, kernels
+from brushes.kernels import _flow_generated as flow_kernels
 
 _integrator = None
 
@@ -93,6 +94,16 @@ class Brush:
         None (the default) means the flow integrates the velocity with fold-free RK4 steps.
         Twist and Scale return their closed forms; a subclass that changes the field must
         override this too (they return None when `type(self)` is not their own class).
+        """
+        return None
+
+    def fused_flow(self, points, *, steps):
+        """`steps` classical RK4 steps of `velocity` over [0, 1] at `points` (n, 3) float64, fused
+        into one pass per point, as (n, 3) float64; or None (the default).
+
+        None means the flow runs its own RK4 loop over whole arrays. A brush that offers this must
+        give what that loop gives with the same `steps` (to rounding); the flow picks `steps` and
+        uses it only with no pins. A subclass that changes the field must override this too.
         """
         return None
 
@@ -201,6 +212,14 @@ class Grab(_Kelvinlet):
         c = self.center + t * self.move
         return kernels.grab_displacement(points, c, self.move, self._eps, self._wn, self._beta, out)
 
+    def fused_flow(self, points, *, steps):
+        """The RK4 flow of `velocity` (centre carried along) in one pass per point
+        (`brushes.kernels.flow_derive`); None for a subclass, whose field may differ."""
+        if type(self) is not Grab:
+            return None
+        pts = np.ascontiguousarray(points, dtype=np.float64)
+        return flow_kernels.grab_flow(pts, self.center, self.move, self._eps, self._wn, self._beta, steps)
+
 
 class _Affine(_Kelvinlet):
     """A locally affine brush: the Kelvinlet's gradient contracted with a 3x3 load F (de Goes &
@@ -252,6 +271,15 @@ class _Affine(_Kelvinlet):
 
     def velocity_lipschitz(self):
         return self._bound_for(self.flow_gradient())
+
+    def fused_flow(self, points, *, steps):
+        """The RK4 flow of `velocity` (a fixed load) in one pass per point
+        (`brushes.kernels.flow_derive`); None for a subclass, whose field may differ."""
+        if type(self) not in (Twist, Scale, Pinch):
+            return None
+        load = self._load_for(self.flow_gradient())
+        pts = np.ascontiguousarray(points, dtype=np.float64)
+        return flow_kernels.affine_flow(pts, self.center, load, self._eps, self._w, self._beta, steps)
 
 
 class Twist(_Affine):

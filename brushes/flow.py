@@ -15,8 +15,10 @@ Closed forms where the flow has one come from the brush itself (`Brush.exact_flo
 turns each point by an angle of its distance, Scale slides points along rays), and so do the
 velocity (`Brush.velocity`: a grab carries its centre along, so the centre lands on center + move),
 its bound (`Brush.velocity_lipschitz`, or `Brush.velocity_lipschitz_at` at each stage time when the
-brush overrides it), the segments pins must keep clear of (`Brush.pin_clearance`) and a brush
-that holds the pins itself (`Brush.pinned`; for Handles pins are handles that do not move).
+brush overrides it), the same RK4 steps fused into one pass per point when the brush offers them
+(`Brush.fused_flow`, used with no pins), the segments pins must keep clear of
+(`Brush.pin_clearance`) and a brush that holds the pins itself (`Brush.pinned`; for Handles
+pins are handles that do not move).
 This module reads nothing private of any brush, so a subclass or a plug-in brush gets the same
 treatment as the built-in ones. It registers `apply` as the integrator behind `Brush.apply` when
 imported; `brushes.brush` never imports it.
@@ -141,6 +143,8 @@ def _rk4_flow(brush, pts, solver, stats):
                            for t in np.linspace(0, 1, 5))
     n = _step_count(brush, extra)
     stats.steps, stats.evaluations = n, 4 * n
+    if solver is None and (fused := brush.fused_flow(pts, steps=n)) is not None:
+        return fused  # the same RK4 steps, one pass per point (`Brush.fused_flow`)
     h = 1.0 / n
     x = np.array(pts, dtype=np.float64, order="C")
     k = np.empty_like(x)
