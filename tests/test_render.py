@@ -185,3 +185,33 @@ def test_moved_rows_hand_case():
     # Distances 0, 0.5 and 0.09 (by hand); above 0.1 only the second row.
     np.testing.assert_array_equal(moved_rows(a, b, 0.1), [1])
     np.testing.assert_array_equal(moved_rows(a, b, 0.05), [1, 2])
+
+
+def test_moved_rows_numba_and_numpy_agree(monkeypatch):
+    rng = np.random.default_rng(4)
+    a = rng.normal(size=(5000, 3)).astype(np.float32)
+    b = a + rng.normal(scale=0.01, size=a.shape).astype(np.float32)
+    fast = moved_rows(a, b, 0.015)
+    monkeypatch.setenv("PLIANT_BACKEND", "numpy")
+    slow = moved_rows(a, b, 0.015)
+    # reference: the distances by numpy's own norm
+    np.testing.assert_array_equal(fast, np.flatnonzero(np.linalg.norm(a.astype(float) - b, axis=1) > 0.015))
+    np.testing.assert_array_equal(fast, slow)
+
+
+def test_partial_update_on_the_numpy_path_equals_numba(monkeypatch):
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    posed = mesh.vertices.copy()
+    moved = np.flatnonzero(posed[:, 1] < -0.4)
+    posed[moved] *= 1.1
+
+    def run():
+        field = NormalField(mesh.faces, len(mesh.vertices))
+        field.full(mesh.vertices)
+        return field.update(posed, moved), field.normals.copy()
+
+    fast = run()
+    monkeypatch.setenv("PLIANT_BACKEND", "numpy")
+    slow = run()
+    np.testing.assert_array_equal(fast[0], slow[0])
+    np.testing.assert_allclose(fast[1], slow[1], rtol=0, atol=1e-6)

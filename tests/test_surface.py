@@ -99,3 +99,70 @@ def test_bad_input_names_the_argument():
         surface.signed_volume(np.full((4, 3), np.nan), TET_F)
     with pytest.raises(ValueError, match="^operator: must have shape"):
         surface.vertex_normals(TET_V, TET_F, operator=surface.vertex_normal_operator(TET_F, 5))
+
+
+def _both_paths(monkeypatch, fn):
+    """fn() on the numba path, then on the numpy path (as with PLIANT_BACKEND=numpy)."""
+    assert surface._kernels() is not None
+    fast = fn()
+    monkeypatch.setenv("PLIANT_BACKEND", "numpy")
+    assert surface._kernels() is None
+    slow = fn()
+    monkeypatch.delenv("PLIANT_BACKEND")
+    return fast, slow
+
+
+@pytest.mark.parametrize("dtype", [np.float64, np.float32])
+def test_numba_and_numpy_paths_agree(monkeypatch, dtype):
+    mesh = trimesh.creation.icosphere(subdivisions=4)
+    v = (mesh.vertices * [1.0, 0.7, 1.3]).astype(dtype)
+    fast, slow = _both_paths(monkeypatch, lambda: (surface.face_cross_products(v, mesh.faces),
+                                                   surface.vertex_normals(v, mesh.faces, normalize=False)))
+    for a, b in zip(fast, slow):
+        assert a.dtype == b.dtype == dtype
+        # the same products in the same precision: equal to rounding of the sums' order
+        np.testing.assert_allclose(a, b, rtol=0, atol=1e-6 if dtype == np.float32 else 1e-14)
+    # outside reference: trimesh's face cross products (its triangles.cross)
+    np.testing.assert_allclose(fast[0], trimesh.triangles.cross(v[mesh.faces].astype(np.float64)),
+                               atol=1e-6)
+
+
+def test_update_vertex_normals_equals_a_fresh_computation_on_both_paths(monkeypatch):
+    mesh = trimesh.creation.icosphere(subdivisions=3)
+    faces = np.asarray(mesh.faces, dtype=np.int64)
+    n, m = len(mesh.vertices), len(faces)
+    op = surface.vertex_normal_operator(faces, n)
+    moved = np.flatnonzero(mesh.vertices[:, 2] > 0.5)
+    posed = mesh.vertices.copy()
+    posed[moved] += 0.1 * np.cos(4 * posed[moved])
+
+    def run():
+        cross, normals = np.zeros((m, 3)), np.zeros((n, 3))
+        every = surface.update_vertex_normals(mesh.vertices, faces, op, cross, normals)
+        changed = surface.update_vertex_normals(posed, faces, op, cross, normals, moved=moved)
+        return every, changed, cross, normals
+
+    fast, slow = _both_paths(monkeypatch, run)
+    np.testing.assert_array_equal(fast[0], np.arange(n))
+    # the rewritten vertices: every corner of every face that uses a moved vertex (by definition)
+    ring = np.unique(faces[np.isin(faces, moved).any(axis=1)])
+    for every, changed, cross, normals in (fast, slow):
+        np.testing.assert_array_equal(changed, ring)
+        np.testing.assert_allclose(cross, surface.face_cross_products(posed, faces), atol=1e-14)
+        np.testing.assert_allclose(normals, surface.vertex_normals(posed, faces, normalize=False), atol=1e-6)
+    # outside reference: trimesh's area-weighted normals of the posed mesh
+    moved_mesh = trimesh.Trimesh(posed, faces, process=False)
+    reference = trimesh.geometry.mean_vertex_normals(n, faces, moved_mesh.face_normals * moved_mesh.area_faces[:, None])
+    unit = fast[3] / np.linalg.norm(fast[3], axis=1, keepdims=True)
+    np.testing.assert_allclose(unit, reference, atol=1e-6)
+
+
+def test_update_vertex_normals_refuses_mismatched_caches():
+    op = surface.vertex_normal_operator(TET_F, 4)
+    good = np.zeros((4, 3))
+    with pytest.raises(ValueError, match="^cross: must be"):
+        surface.update_vertex_normals(TET_V, TET_F, op, np.zeros((3, 3)), good)
+    with pytest.raises(ValueError, match="^operator: must have shape"):
+        surface.update_vertex_normals(TET_V, TET_F, surface.vertex_normal_operator(TET_F, 5), good, good)
+    with pytest.raises(ValueError, match="^moved: indices"):
+        surface.update_vertex_normals(TET_V, TET_F, op, good, good, moved=[7])

@@ -39,15 +39,35 @@ class RenderError(RuntimeError):
 # Pure part: normals, outline geometry, matrix layout.
 # --------------------------------------------------------------------------------------------
 
-#: Faces per call of :func:`brushes.surface.face_cross_products` (its temporaries then stay in
-#: the processor's cache: about a third faster on a million faces than one call).
-_CHUNK = 32768
+_MOVED = None
 
 
 def moved_rows(a, b, tolerance):
-    """(k,) int64 indices of the rows of (n, 3) ``a`` farther than ``tolerance`` from ``b``."""
-    d = np.subtract(a, b)
-    return np.flatnonzero(np.einsum("ij,ij->i", d, d) > float(tolerance) ** 2)
+    """(k,) int64 indices of the rows of (n, 3) ``a`` farther than ``tolerance`` from ``b``.
+
+    One parallel numba pass when numba is there (`brushes.kernels.numba_module`), else numpy.
+    """
+    global _MOVED
+    from brushes import kernels
+    a, b = np.asarray(a), np.asarray(b)
+    if a.shape != b.shape or a.ndim != 2 or a.shape[1] != 3:
+        raise checks.FieldError("b", f"must have the shape of a, (n, 3), got {b.shape} and {a.shape}")
+    limit = float(tolerance) ** 2
+    numba = kernels.numba_module()
+    if numba is None or a.dtype != b.dtype:
+        d = np.subtract(a, b)
+        return np.flatnonzero(np.einsum("ij,ij->i", d, d) > limit)
+    if _MOVED is None:
+        @numba.njit(parallel=True, cache=True, nogil=True)
+        def far(a, b, limit, out):
+            for i in numba.prange(a.shape[0]):
+                dx, dy, dz = a[i, 0] - b[i, 0], a[i, 1] - b[i, 1], a[i, 2] - b[i, 2]
+                out[i] = dx * dx + dy * dy + dz * dz > limit
+            return out
+
+        _MOVED = far
+    flags = _MOVED(np.ascontiguousarray(a), np.ascontiguousarray(b), limit, np.empty(len(a), np.bool_))
+    return np.flatnonzero(flags)
 
 
 class NormalField:
@@ -57,7 +77,8 @@ class NormalField:
     (b_f - a_f) x (c_f - a_f)``, left unnormalised: the mesh shader normalises per vertex).
     The face cross products are cached, so after a stroke moves a set of vertices only the
     faces that use them are recomputed, and only the normals of those faces' corners are summed
-    again (:meth:`update`): the work follows the moved region, not the mesh.
+    again (:meth:`update`, through :func:`brushes.surface.update_vertex_normals`: parallel numba
+    loops over flagged faces and vertices): the work follows the moved region, not the mesh.
 
     Parameters
     ----------
@@ -75,19 +96,22 @@ class NormalField:
         self.faces = checks.faces("faces", faces, int(n_vertices))
         self.n_vertices = int(n_vertices)
         self.operator = surface.vertex_normal_operator(self.faces, self.n_vertices)
+        # the per-frame kernels read the indices at half the bytes of int64
+        self._faces32 = self.faces.astype(np.int32) if self.n_vertices < 2**31 else self.faces
         self.cross = np.zeros((len(self.faces), 3), dtype=np.float32)
         self.normals = np.zeros((self.n_vertices, 3), dtype=np.float32)
+
+    def _positions(self, vertices):
+        v = _as_f32(vertices, (3,), "vertices")
+        if len(v) != self.n_vertices:
+            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(v)}")
+        return v
 
     def full(self, vertices):
         """Recompute every normal from (n, 3) positions; returns :attr:`normals`."""
         from brushes import surface
-        v = _as_f32(vertices, (3,), "vertices")
-        if len(v) != self.n_vertices:
-            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(v)}")
-        for start in range(0, len(self.faces), _CHUNK):  # in cache-sized pieces
-            stop = start + _CHUNK
-            self.cross[start:stop] = surface.face_cross_products(v, self.faces[start:stop])
-        self.normals[:] = self.operator @ self.cross
+        surface.update_vertex_normals(self._positions(vertices), self._faces32, self.operator,
+                                      self.cross, self.normals)
         return self.normals
 
     def update(self, vertices, moved):
@@ -98,21 +122,14 @@ class NormalField:
         moved, which is recomputed in one full pass).
         """
         from brushes import surface
-        v = _as_f32(vertices, (3,), "vertices")
-        if len(v) != self.n_vertices:
-            raise checks.FieldError("vertices", f"must have {self.n_vertices} rows, got {len(v)}")
+        v = self._positions(vertices)
         moved = np.asarray(moved, dtype=np.int64).reshape(-1)
         if moved.size == 0:
             return moved
         if moved.size > self.n_vertices // 4:  # most of the mesh: one full pass is cheaper
-            self.full(v)
-            return np.arange(self.n_vertices)
-        op = self.operator
-        touched = np.unique(op[moved].indices)  # faces that use a moved vertex
-        self.cross[touched] = surface.face_cross_products(v, self.faces[touched])
-        corners = np.unique(self.faces[touched])
-        self.normals[corners] = op[corners] @ self.cross
-        return corners
+            return surface.update_vertex_normals(v, self._faces32, self.operator, self.cross, self.normals)
+        return surface.update_vertex_normals(v, self._faces32, self.operator, self.cross, self.normals,
+                                             moved=moved)
 
 
 def ring_points(center, radius, right, up, *, segments=64):
