@@ -7,7 +7,8 @@ falloff, whose far field reaches every vertex) on a generated wavy torus
 1. brush: the exact stroke the release will commit, ``Brush.apply`` with the flow on every
    vertex (:mod:`viewer.tools.strokes`), as the preview worker computes it;
 2. normals: the worker's vertex normals of that result, recomputed only around vertices that
-   moved more than the preview tolerance (:meth:`viewer.render.NormalField.update`);
+   moved more than the preview tolerance (:meth:`viewer.render.NormalField.update`), and
+   that update alone on every vertex (the rest is the session's bookkeeping around it);
 3. upload: positions and normals replaced in place with ``glBufferSubData``, then
    ``glFinish`` so the copy has really happened (headless OpenGL);
 4. ui: what a drag event costs the window's thread when the preview runs on the worker
@@ -56,7 +57,9 @@ def bench_drag(n_vertices=200_000, *, repeats=10):
     -------
     dict
         ``n_vertices``, ``n_faces``, ``add_ms`` (the baseline), medians in milliseconds
-        ``brush_ms``, ``normals_ms``, ``upload_ms``, ``ui_ms``, ``refit_ms``, the same divided
+        ``brush_ms``, ``normals_ms``, ``field_ms`` (of the normals, the
+        :meth:`viewer.render.NormalField.update` of every vertex alone), ``upload_ms``, ``ui_ms``,
+        ``refit_ms``, the same divided
         by ``add_ms`` under ``*_ratio``, ``moved_fraction`` (share of vertices whose normals
         were recomputed at the last event) and ``exact`` (largest gap between the last preview
         and the committed positions, relative to the stroke's largest motion).
@@ -102,6 +105,15 @@ def bench_drag(n_vertices=200_000, *, repeats=10):
             gl.glFinish()
             upload.append(1e3 * (time.perf_counter() - t))
         last = np.array(session.shown())
+        # the normals' own kernels on the last preview: NormalField.update of every vertex (the
+        # rest of the normals part is the session's bookkeeping around it)
+        from viewer.render import NormalField, moved_rows
+        field = NormalField(faces, len(vertices))
+        start32 = vertices.astype(np.float32)
+        field.full(start32)
+        last32 = last.astype(np.float32)
+        everything = moved_rows(last32, start32, 0.0)
+        field_ms = _median_ms(lambda: field.update(last32, everything), repeats)
         end = (x + 1 + 2 * repeats, y + repeats)
         session.release(*end, LEFT)
         committed = np.asarray(session.vertices)
@@ -132,9 +144,9 @@ def bench_drag(n_vertices=200_000, *, repeats=10):
         "n_vertices": len(vertices), "n_faces": len(faces), "add_ms": add_ms,
         "brush_ms": statistics.median(brush), "normals_ms": statistics.median(normals),
         "upload_ms": statistics.median(upload), "ui_ms": statistics.median(ui),
-        "refit_ms": refit_ms, "moved_fraction": moved, "exact": exact,
+        "refit_ms": refit_ms, "field_ms": field_ms, "moved_fraction": moved, "exact": exact,
     }
-    for part in ("brush", "normals", "upload", "ui", "refit"):
+    for part in ("brush", "normals", "field", "upload", "ui", "refit"):
         result[f"{part}_ratio"] = result[f"{part}_ms"] / add_ms
     return result
 
@@ -145,9 +157,11 @@ def main(argv=None):
     parser.add_argument("n_vertices", nargs="*", type=int, default=list(SIZES))
     parser.add_argument("--repeats", type=int, default=10)
     args = parser.parse_args(argv)
-    print("| vertices | np.add | brush (exact flow) | normals | upload | UI thread | refit | "
-          "normals redone | preview vs commit |")
-    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- |")
+    from brushes.kernels import prefer_sleeping_threads
+    prefer_sleeping_threads()  # as the `pliant` command does before the viewer's first kernel
+    print("| vertices | np.add | brush (exact flow) | normals | of which NormalField | upload | UI thread | "
+          "refit | normals redone | preview vs commit |")
+    print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
     for n in args.n_vertices:
         r = bench_drag(n, repeats=args.repeats)
 
@@ -155,6 +169,7 @@ def main(argv=None):
             return f"{r[part + '_ms']:.1f} ms ({r[part + '_ratio']:.1f}x)"
 
         print(f"| {r['n_vertices']:,} | {r['add_ms']:.2f} ms | {cell('brush')} | {cell('normals')} | "
+              f"{cell('field')} | "
               f"{cell('upload')} | {cell('ui')} | {cell('refit')} | "
               f"{100 * r['moved_fraction']:.0f}% | {r['exact']:.1e} |", flush=True)
     return 0
