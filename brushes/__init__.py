@@ -12,6 +12,7 @@ engineering, structural or medical analysis.
 """
 from brushes import flow, registry  # flow registers itself behind Brush.apply
 from brushes.brush import Brush, Grab, Pinch, Scale, Twist
+from brushes.dynamic import Dynamic, dynamic
 from brushes.flow import FlowStats
 from brushes.handles import Handles
 from brushes.mirror import Mirrored, mirror

@@ -437,24 +437,33 @@ def _limit_at_infinity(E, rv, ev):
     """lim_{T -> oo} of E(sigma, pi, s0, r2, T, eps) at |r| = rv, eps = ev, exactly.
 
     With u = 1 / T: sigma = (P + M) / u and pi = P M / u^2, where P, M = sqrt(1 +- 2 r u +
-    s^2 u^2) are analytic at u = 0 with P(0) = M(0) = 1. E * pi becomes N(u, P, M) / D(u, P, M)
-    with polynomials N, D; with P and M replaced by their Taylor polynomials of order K the
-    coefficients of u^0 .. u^K of N and D are exact. The limit is read off the lowest order m of
-    D (m <= K is required, else K is doubled): N's order above m gives 0, equal gives the
-    ratio of the coefficients, below gives infinity.
+    s^2 u^2) are analytic at u = 0 with P(0) = M(0) = 1. E becomes N(u, P, M) / D(u, P, M) with
+    polynomials N, D (the number pi is carried as a symbol); with P and M replaced by their
+    Taylor polynomials of order K the coefficients of u^0 .. u^K of N and D are exact. The limit
+    is read off the lowest order m of D (m <= K is required, else K is doubled): N's order above
+    m gives 0, equal gives the ratio of the coefficients, below gives infinity.
     """
-    u, P, M = sp.symbols("u P M", positive=True)
+    u, P, M, pi_sym = sp.symbols("u P M pi_sym", positive=True)
     sv = sp.sqrt(rv**2 + ev**2)
-    full = (E * sp.pi).subs({sig: (P + M) / u, pi_: P * M / u**2, T: 1 / u, r2: rv**2, s0: sv, eps: ev})
-    num, den = (sp.Poly(sp.expand(q), u, P, M) for q in sp.fraction(sp.together(full)))
+    full = E.subs(sp.pi, pi_sym).subs({sig: (P + M) / u, pi_: P * M / u**2, T: 1 / u, r2: rv**2, s0: sv, eps: ev})
+    num, den = sp.fraction(sp.together(full))
+    pn, pd = sp.Poly(num, pi_sym), sp.Poly(den, pi_sym)
+    scale = sp.Integer(1)
+    if len(pn.terms()) == 1 and len(pd.terms()) == 1:   # pi only as a factor: take it out, work over QQ
+        (kn,), cn_ = pn.terms()[0]
+        (kd,), cd_ = pd.terms()[0]
+        num, den, scale, dom = cn_, cd_, sp.pi ** (kn - kd), sp.QQ
+    else:
+        dom = sp.QQ[pi_sym]
+    num, den = (sp.Poly(sp.expand(q), u, P, M, domain=dom) for q in (num, den))
     K = 4
     while True:
         def series(sign):
             ser = sp.series(sp.sqrt(1 + sign * 2 * rv * u + sv**2 * u**2), u, 0, K + 1).removeO()
-            return sp.Poly(ser, u, domain=sp.QQ)
+            return sp.Poly(ser, u, domain=dom)
 
         def truncate(q):
-            return sp.Poly.from_dict({m: cf for m, cf in q.as_dict().items() if m[0] <= K}, u, domain=sp.QQ) \
+            return sp.Poly.from_dict({m: cf for m, cf in q.as_dict().items() if m[0] <= K}, u, domain=dom) \
                 if not q.is_zero else q
 
         Pt, Mt = series(1), series(-1)
@@ -462,14 +471,15 @@ def _limit_at_infinity(E, rv, ev):
 
         def power(base, name, k):
             if (name, k) not in powers:
-                powers[(name, k)] = sp.Poly(1, u, domain=sp.QQ) if k == 0 else truncate(power(base, name, k - 1) * base)
+                powers[(name, k)] = sp.Poly(1, u, domain=dom) if k == 0 else truncate(power(base, name, k - 1) * base)
             return powers[(name, k)]
 
         def lowest(poly):
-            total = sp.Poly(0, u, domain=sp.QQ)
+            total = sp.Poly(0, u, domain=dom)
             for (i, j, k), cf in poly.terms():
                 if i <= K:
-                    total += truncate(sp.Poly(cf * u**i, u, domain=sp.QQ) * power(Pt, "P", j) * power(Mt, "M", k))
+                    total += truncate(sp.Poly(dom.to_sympy(cf) * u**i, u, domain=dom) * power(Pt, "P", j)
+                                      * power(Mt, "M", k))
             for k in range(K + 1):
                 value = total.coeff_monomial(u**k)
                 if value != 0:
@@ -485,7 +495,7 @@ def _limit_at_infinity(E, rv, ev):
         return sp.Integer(0)
     if mn < md:
         return sp.oo
-    return sp.Rational(cn) / sp.Rational(cd) / sp.pi
+    return sp.simplify((dom.to_sympy(cn) / dom.to_sympy(cd)).subs(pi_sym, sp.pi) * scale)
 
 
 def prove_long_time_limit():
@@ -714,7 +724,8 @@ def _source_xyz(level, part, kind, load, e_val):
 def _residuals(level, part, kind):
     """Exact residuals at the rational points of the part's wave equation
     (pressure: u_tt - c^2 grad div u - source, and curl u; shear: u_tt + c^2 curl curl u - source,
-    and div u), each of which must be 0."""
+    and div u) and of its rest at t = 0 (u, and u_t less the impulse's kick), each of which must
+    be 0."""
     load = SAMPLE_LOADS[kind]
     c2 = Fraction(int(SAMPLE_SPEED.p), int(SAMPLE_SPEED.q)) ** 2
     out = []
@@ -737,12 +748,22 @@ def _residuals(level, part, kind):
             extra = [sum(d1(i, i) for i in range(3))]                                # div u
         out.extend(sp.Rational(v.numerator, v.denominator) - s for v, s in zip(res, src))
         out.extend(extra)
+        # rest at t = 0: u = 0, and u_t = 0 except for the impulse, whose push starts the
+        # material with the velocity the step's source gives (momentum = impulse)
+        u0 = _field_jets(level, part, kind, load, Fraction(e_val), [Fraction(v) for v in point], Fraction(0))
+        kick = [sp.Integer(0)] * 3
+        if level == "impulse":
+            at0 = {x: point[0], y: point[1], z: point[2], t: 0}
+            kick = [sp.simplify(e.xreplace(at0)) for e in _source_xyz("step", part, kind, load, sp.Integer(e_val))]
+        out.extend(u0[i].c[0] for i in range(3))
+        out.extend(sp.Rational(u0[i].c[4].numerator, u0[i].c[4].denominator) - kick[i] for i in range(3))
     return out
 
 
 def prove_fields_at_rational_points():
     """End to end, on the very expressions that are generated: every level, both parts, and
-    grab, twist, scale and pinch solve their wave equations exactly at the rational points.
+    grab, twist, scale and pinch solve their wave equations exactly at the rational points and
+    start from rest (the impulse with its kick) at t = 0 there.
 
     Combined as in step 5 (u = kappa c_p^(2-n) U_p + c_s^(2-n) U_s, mu = 1 / (4 pi),
     rho = mu / c_s^2, kappa c_p^2 = c_s^2, curl U_p = 0, div U_s = 0) they solve the Navier
@@ -941,9 +962,12 @@ _AFFINE_HEAD = """\
 TERM_COUNTS = (1, 2)
 
 
+_KERNEL_NAME_SOURCE = '''
 def kernel_name(kind, level, K, terms, compressible):
-    """Name of the numba kernel for `K` radii and `terms` wave terms."""
+    """Name of the numba kernel for `K` radii and `terms` wave terms (pressure part if compressible)."""
     return f"dyn_{kind}_{level}_{K}x{terms}{'_p' if compressible else ''}"
+'''
+exec(_KERNEL_NAME_SOURCE)   # defines kernel_name here; the same text is emitted into the generated file
 
 
 def _numba_kernels():
@@ -1034,7 +1058,7 @@ def np_dyn_affine(points, center, F, eps, w, ts, ks, tp, kp, static_c, beta, out
 
 def generate():
     """The full text of `_dynamic_generated.py`."""
-    return HEADER + _numpy_profiles() + _NUMPY_ASSEMBLY + _numba_kernels()
+    return HEADER + "\n" + _KERNEL_NAME_SOURCE + _numpy_profiles() + _NUMPY_ASSEMBLY + _numba_kernels()
 
 
 def generated_path():
