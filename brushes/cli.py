@@ -51,6 +51,7 @@ examples:
   pliant batch pose.json assets/*.obj --out posed/ --jobs 2
   pliant report figure.obj posed.obj --json
   pliant view posed.obj
+  pliant animate pose.json figure.obj -o figure-pose.glb
 
 exit codes:
   0    success
@@ -136,6 +137,20 @@ examples:
   pliant snapshot figure.obj -o posed.png --recipe pose.json --size 800x600
   pliant snapshot figure.obj -o side.png --view side
 """),
+    "animate": ("play a recipe as motion with its secondary motion, as a glTF animation",
+                "Play RECIPE on MESH over --seconds: each stroke gets an equal time slot, flows\n"
+                "into place over the first half of it and settles over the rest, with the\n"
+                "elastodynamic waves its load sends through the body added (Dynamic Kelvinlets,\n"
+                "de Goes & James 2018). The frames are stored as a few morph targets (a\n"
+                "truncated SVD; --tolerance sets the worst vertex error allowed) animated by their\n"
+                "weights in a glTF 2.0 file; --frames also keeps the exact frames (.npz). The\n"
+                "motion is an idealized infinite elastic body, for animation only.",
+                """\
+examples:
+  pliant animate pose.json figure.obj -o figure-pose.glb
+  pliant animate pose.json figure.obj -o slow.glb --seconds 4 --shear-speed 2
+  pliant animate pose.json figure.obj -o pose.gltf --tolerance 1e-4 --frames pose-frames.npz
+"""),
 }
 
 
@@ -159,6 +174,16 @@ def _jobs(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
     if value < 1:
         raise argparse.ArgumentTypeError(f"must be at least 1, got {value}")
+    return value
+
+
+def _positive(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not (value > 0 and value < float("inf")):
+        raise argparse.ArgumentTypeError(f"must be a positive number, got {text!r}")
     return value
 
 
@@ -231,6 +256,23 @@ def build_parser() -> argparse.ArgumentParser:
                    help="image size in pixels (default: 800x600)")
     p.add_argument("--view", metavar="SPEC", help="camera view (see the viewer's docs)")
     p.add_argument("--force", action="store_true", help="allow writing over an input file")
+
+    p = command("animate")
+    p.add_argument("recipe", metavar="RECIPE", help="recipe file (.json)")
+    p.add_argument("mesh", metavar="MESH", help="mesh to animate")
+    p.add_argument("-o", "--out", required=True, metavar="OUT.glb",
+                   help="glTF animation to write (.glb or .gltf)")
+    p.add_argument("--seconds", type=_positive, default=2.0, metavar="S",
+                   help="length of the animation in seconds (default: 2)")
+    p.add_argument("--fps", type=_positive, default=30.0, metavar="F",
+                   help="frames per second (default: 30)")
+    p.add_argument("--shear-speed", type=_positive, default=None, metavar="C",
+                   help="shear wave speed in model units per second (default: two of the mesh's "
+                        "bounding-box diagonals per second)")
+    p.add_argument("--tolerance", type=_positive, default=None, metavar="T",
+                   help="worst vertex error of the morph targets, model units (default: 1e-3 of "
+                        "the bounding-box diagonal)")
+    p.add_argument("--frames", metavar="OUT.npz", help="also write the exact frames (.npz)")
     return parser
 
 
@@ -564,6 +606,52 @@ def cmd_snapshot(args) -> int:
     except SnapshotError as exc:
         raise CliError(str(exc)) from exc
     print(f"snapshot: {args.out}")
+    return EXIT_OK
+
+
+#: Memory the frames may take (bytes, float64, twice over while compressing) before animate refuses.
+ANIMATE_MEMORY = 8 * 2**30
+
+
+def cmd_animate(args) -> int:
+    from brushes.formats import load_mesh
+    from brushes.recipe import load_recipe
+
+    _existing(args.recipe, "RECIPE")
+    _existing(args.mesh, "MESH")
+    _check_outputs([("--out", args.out), ("--frames", args.frames)], [args.recipe, args.mesh], force=False)
+    _check_suffix("--out", args.out, ("glb", "gltf"))
+    if args.frames:
+        _check_suffix("--frames", args.frames, ("npz",))
+    recipe = load_recipe(args.recipe)
+    doc = load_mesh(args.mesh)
+    from brushes import animate as _animate
+
+    count = len(_animate.frame_times(args.seconds, args.fps))
+    need = 2 * 24 * count * len(doc.vertices)
+    if need > ANIMATE_MEMORY:
+        raise CliError(f"--seconds/--fps: {count} frames of {len(doc.vertices)} vertices need about "
+                       f"{need / 2**30:.0f} GiB; shorten the animation or lower the frame rate")
+    bar = None
+    if count * len(doc.vertices) >= _animate.LONG_ANIMATION:
+        from tqdm import tqdm
+
+        bar = tqdm(total=count, desc="animate", unit="frame", file=sys.stderr, dynamic_ncols=True, leave=False)
+    try:
+        with _recipe_context(args.recipe):
+            summary = _animate.animate(recipe, doc, args.out, seconds=args.seconds, fps=args.fps,
+                                       shear_speed=args.shear_speed, tolerance=args.tolerance,
+                                       frames_path=args.frames,
+                                       progress=None if bar is None else (lambda j: bar.update(1)))
+    finally:
+        if bar is not None:
+            bar.close()
+    print(f"animation: {args.out} ({summary.frames} frames over {summary.seconds:g} s, shear speed "
+          f"{summary.shear_speed:.4g} units/s)")
+    print(f"morph targets: {summary.rank} (worst vertex error {summary.worst_error:.3g}; largest motion "
+          f"{summary.largest_motion:.3g})")
+    if args.frames:
+        print(f"exact frames: {args.frames}")
     return EXIT_OK
 
 

@@ -18,10 +18,11 @@ What the numbers mean:
   away to 0 (the waves carry the push off to infinity).
 - ``ramp`` (seconds) spreads the load's onset: the step rises linearly over ``ramp`` seconds, the
   impulse is pushed evenly over them.
-- ``damping`` (seconds) is a visual device, not a material law: the part of the motion that has
-  not yet settled (the exact response minus its long-time limit) is multiplied by the window
-  (1 - t/d)^2 (1 + 2 t/d), which falls smoothly from 1 at t = 0 to 0 at t = d, so the motion
-  ends exactly at t = d. The damped field no longer solves the elastodynamic equations.
+- ``damping`` (seconds) is a visual device, not a material law: the inertial part of the motion
+  (the exact response minus the quasi-static one, the displacement the load would cause in a body
+  without inertia, L(t) times the static brush) is multiplied by the window
+  h(t) = (1 - t/d)^2 (1 + 2 t/d), which falls smoothly from 1 at t = 0 to 0 at t = d, so the
+  waves are gone exactly at t = d. The damped field no longer solves the elastodynamic equations.
 - The body is infinite: waves leave and never come back, so the motion lags and catches up
   rather than ringing. The model is linear (small motion) and idealized, for animation only.
 """
@@ -165,8 +166,9 @@ class Dynamic:
         """(level, [(time, coefficient)], static coefficient) of the field at time t > 0.
 
         The field is sum_j coefficient_j W_level(time_j) (wave part plus m_level(time_j) times the
-        static Kelvinlet, m = 0, 1, time for impulse, step, ramp); the damped share (1 - h) of the
-        step's limit is added to the static coefficient.
+        static Kelvinlet, m = 0, 1, time for impulse, step, ramp); with damping the coefficients
+        carry the window h and the quasi-static response's share (1 - h) L(t) is added to the
+        static coefficient.
         """
         h = window(t, self.damping)
         settles = self.load == "step"
@@ -180,8 +182,19 @@ class Dynamic:
             terms = [(t, h)]
         terms = [(tt, cc) for tt, cc in terms if cc != 0.0]
         multiplier = {"impulse": lambda tt: 0.0, "step": lambda tt: 1.0, "ramp": lambda tt: tt}[level]
-        static_c = sum(cc * multiplier(tt) for tt, cc in terms) + ((1.0 - h) if settles else 0.0)
+        static_c = sum(cc * multiplier(tt) for tt, cc in terms) + (1.0 - h) * self.load_profile(t)
         return level, terms, static_c
+
+    def load_profile(self, t):
+        """L(t): the load's size at time t (s) as a share of the static brush's (1 s of push for
+        the impulse), so that L(t) times `limit` is the quasi-static response, the displacement
+        the load would cause in a body without inertia: step 1 (ramped: min(t / ramp, 1)),
+        impulse 0 after its instant (spread: 1 / ramp while it is pushed)."""
+        if t <= 0.0:
+            return 0.0
+        if self.load == "step":
+            return min(t / self.ramp, 1.0) if self.ramp > 0.0 else 1.0
+        return (1.0 / self.ramp if t < self.ramp else 0.0) if self.ramp > 0.0 else 0.0
 
     def limit(self, points):
         """The long-time displacement (n, 3) float64: the static brush's for the step load (with
@@ -279,8 +292,9 @@ def dynamic(brush, *, shear_speed, load="step", damping=None, ramp=0.0, pins=Non
         speed follows from the brush's Poisson's ratio (infinite at 0.5).
     load : "step" (switched on at t = 0, settles to `brush.displacement`) or "impulse" (one push:
         the time derivative of the step response times 1 s; dies away to 0).
-    damping : seconds or None. A visual device: the unsettled part of the motion is faded by a
-        smooth window that reaches 0 at t = damping, after which the field is its limit exactly.
+    damping : seconds or None. A visual device: the inertial part of the motion (the response
+        less the quasi-static one, `load_profile(t)` times `limit`) is faded by a smooth window
+        that reaches 0 at t = damping, after which the field is quasi-static exactly.
     ramp : seconds over which the load comes on (a linear rise; for the impulse, an even push).
     pins : (m, 3) positions held by counter-loads, as in `Brush.apply`: the counter-loads are the
         static ones, so the pins hold exactly once the motion has settled and move a little with

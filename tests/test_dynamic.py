@@ -300,23 +300,28 @@ def test_impulse_is_the_time_derivative_and_ramp_the_time_average_of_the_step():
 
 
 def test_damping_window():
-    # The documented window: u = u_oo + h(t/d) (u_exact - u_oo), h(q) = (1 - q)^2 (1 + 2 q),
-    # and exactly the limit from t = d on.
+    # The documented window: u = u_qs + h(t/d) (u_exact - u_qs), h(q) = (1 - q)^2 (1 + 2 q), with
+    # the quasi-static response u_qs = L(t) u_static (L the load's rise), exactly u_qs from t = d.
     g = brushes.Grab((0, 0, 0), 0.3, (0.1, 0.0, 0.0))
     x = np.random.default_rng(2).normal(size=(50, 3)) * 0.4
-    exact = brushes.dynamic(g, shear_speed=1.0)
-    damped = brushes.dynamic(g, shear_speed=1.0, damping=0.5)
-    limit = exact.limit(x)
-    np.testing.assert_array_equal(damped.displacement(x, 0.5), limit)
-    np.testing.assert_array_equal(damped.displacement(x, 3.0), limit)
-    for t in (0.05, 0.2, 0.45):
-        q = t / 0.5
-        h = (1 - q) ** 2 * (1 + 2 * q)
-        want = limit + h * (exact.displacement(x, t) - limit)
-        np.testing.assert_allclose(damped.displacement(x, t), want, rtol=0, atol=1e-12)
+    for ramp in (0.0, 0.3):
+        exact = brushes.dynamic(g, shear_speed=1.0, ramp=ramp)
+        damped = brushes.dynamic(g, shear_speed=1.0, damping=0.5, ramp=ramp)
+        static = g.displacement(x)
+        np.testing.assert_allclose(exact.limit(x), static, rtol=0, atol=1e-15)
+        for t in (0.05, 0.2, 0.45, 0.5, 3.0):
+            L = min(t / ramp, 1.0) if ramp else 1.0
+            q = min(t / 0.5, 1.0)
+            h = (1 - q) ** 2 * (1 + 2 * q)
+            want = L * static + h * (exact.displacement(x, t) - L * static)
+            np.testing.assert_allclose(damped.displacement(x, t), want, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(damped.displacement(x, 3.0), damped.limit(x))
     assert window(0.0, 0.5) == 1.0 and window(0.5, 0.5) == 0.0 and window(0.2, None) == 1.0
     imp = brushes.dynamic(g, shear_speed=1.0, load="impulse", damping=0.5)
     np.testing.assert_array_equal(imp.displacement(x, 0.6), np.zeros_like(x))
+    # an instant wave (huge speed) has no inertial part: the damped ramp is quasi-static throughout
+    fast = brushes.dynamic(g, shear_speed=1e9, ramp=0.3, damping=0.5)
+    np.testing.assert_allclose(fast.displacement(x, 0.1), g.displacement(x) / 3, rtol=0, atol=1e-9)
 
 
 def test_moving_and_rotating_the_brush_moves_and_rotates_the_motion():
