@@ -18,6 +18,11 @@ import numpy as np
 LEVELS = ("impulse", "step", "ramp")
 
 
+def kernel_name(kind, level, K, terms, compressible):
+    """Name of the numba kernel for `K` radii and `terms` wave terms (pressure part if compressible)."""
+    return f"dyn_{kind}_{level}_{K}x{terms}{'_p' if compressible else ''}"
+
+
 def np_profiles(rr, r, eps, w, ts, ks, tp, kp, static_c, beta, level, kind, compressible):
     """Sums over radii and wave terms of the profiles, vectorized over rr = |r|^2 and r = |r|."""
     if kind == 'grab' and level == 'impulse':
