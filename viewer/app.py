@@ -239,6 +239,11 @@ class Viewer:
         if session.pins:
             self.markers.points(np.asarray(session.pins), palette.PIN, size=PIN_PIXELS,
                                 outline=palette.PIN_RIM, outline_width=3.0)
+        for tool in session.tools.values():
+            own = tool.markers(session)
+            if own is not None and len(own):
+                self.markers.points(own, palette.HANDLE, size=PIN_PIXELS,
+                                    outline=palette.PIN_RIM, outline_width=3.0)
         gl.glDisable(gl.GL_DEPTH_TEST)
         text = "\n".join(overlay.status_lines(session.status()))
         if text != self.status.text:  # a new layout only when the words change

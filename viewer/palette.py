@@ -18,7 +18,7 @@ import numpy as np
 __all__ = [
     "BACKGROUND", "CLAY", "CLAY_BACK", "KEY_COLOUR", "KEY_DIRECTION", "FILL_COLOUR",
     "FILL_DIRECTION", "AMBIENT_SKY", "AMBIENT_GROUND", "WRAP", "GLOSS", "SHEEN",
-    "MASK_TINT", "FOLD_TINT", "PIN", "PIN_RIM", "BRUSH_RING", "BRUSH_RING_MIRROR", "TEXT",
+    "MASK_TINT", "FOLD_TINT", "PIN", "PIN_RIM", "HANDLE", "BRUSH_RING", "BRUSH_RING_MIRROR", "TEXT",
     "PANEL", "contrast_ratio",
     "RAMP", "ramp",
 ]
@@ -52,6 +52,8 @@ FOLD_TINT = (0.620, 0.300, 0.900)
 #: Pin markers: a brass disc on a near-black rim.
 PIN = (0.950, 0.780, 0.300)
 PIN_RIM = (0.060, 0.060, 0.070)
+#: Handle markers: a teal disc on the same dark rim (a pin holds, a handle is dragged).
+HANDLE = (0.300, 0.800, 0.760)
 #: The brush outline at its radius, and its mirrored twin.
 BRUSH_RING = (0.960, 0.930, 0.850)
 BRUSH_RING_MIRROR = (0.600, 0.640, 0.700)

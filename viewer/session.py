@@ -86,6 +86,7 @@ _KEY_NAMES = {
     "BACKSLASH": "\\", "SLASH": "/", "HOME": "Home", "DELETE": "Delete", "ESCAPE": "Esc",
     "RETURN": "Enter", "ENTER": "Enter", "NUM_ENTER": "Enter", "BACKSPACE": "Backspace",
     "NUM_ADD": "=", "NUM_SUBTRACT": "-", "NUM_HOME": "Home", "NUM_DELETE": "Delete",
+    "END": "End", "NUM_END": "End",
 }
 
 FALLOFFS = ("wide", "medium", "tight")

@@ -10,6 +10,8 @@ module                    job
                           recipe stroke
 ``pins``                  click to place or remove a pin; Delete removes every pin
 ``mask``                  drag to paint hold, Shift erases; Shift+Delete clears
+``handles``               click to place handles; drag one to its target while the others
+                          hold (Shift turns it); one ``handles`` recipe stroke per drag
 ``export``                Ctrl+S, Ctrl+E, Ctrl+D: recipe, posed mesh, corrective shape
 ========================  ===================================================================
 
@@ -26,7 +28,8 @@ A **tool** subclasses :class:`~viewer.tools.base.Tool` (a command set with point
 behaviour) and sets ``name`` (the action ``tool_<name>`` selects it), ``label`` (status line),
 ``key`` and ``summary`` (the selecting key's row), and optionally ``brush = True`` (it uses
 radius, falloff and Poisson's ratio, and the ring follows the cursor) and
-``orbit_off_model = False`` (a left press off the model still reaches the tool) and
+``orbit_off_model = False`` (a left press off the model still reaches the tool),
+``markers(session)`` (points of its own to draw, or None) and
 ``edits = True`` (it commits strokes: refused while a recovery question is open). A left
 press calls ``press(session, start, hit, modifiers)``; a non-None return value is the
 tool's state for this drag and is passed back to ``drag(session, state, point, modifiers)``,
@@ -55,11 +58,11 @@ class to :data:`REGISTERED` below. Its key, its extra key rows and their actions
 README table); nothing else changes. Keys must not clash (a test checks the table).
 """
 
-from viewer.tools import export, mask, pins, strokes
+from viewer.tools import export, handles, mask, pins, strokes
 from viewer.tools.base import Commands, Tool
 
 __all__ = ["REGISTERED", "Commands", "Tool"]
 
 #: Every tool and command set, in the order their keys appear in the help panel.
 REGISTERED = (strokes.Grab, strokes.Twist, strokes.Scale, strokes.Pinch, pins.Pins, mask.Mask,
-              export.Export)
+              handles.Handles, export.Export)

@@ -84,3 +84,7 @@ class Tool(Commands):
     def outline(self, session, state):
         """``(center (3,), radius)`` of the ring to draw during the drag, or None."""
         return None
+
+    def markers(self, session):
+        """(k, 3) float64 points of this tool's own to draw as markers (handles), or None."""
+        return None
