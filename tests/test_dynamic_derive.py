@@ -168,13 +168,13 @@ def test_generated_numbers_against_mpmath(level, kind, part):
         want = _mp_profiles(level, part, kind, mp.mpf(rr), mp.mpf(T), mp.mpf(e))
         # one part alone: shear (ks = 1) or pressure (kp = 1, ks = 0); no static share for the
         # pressure part, whose static piece is not the Kelvinlet by itself
-        rr_a, r_a = np.array([rr]), np.array([math.sqrt(rr)])
+        rr_a = np.array([rr])
         ones, zero = np.array([1.0]), np.array([0.0])
         Tarr = np.array([T])
         if part == "shear":
-            got = gen.np_profiles(rr_a, r_a, np.array([e]), ones, Tarr, ones, Tarr, zero, 0.0, 0.5, level, kind, False)
+            got = gen.np_profiles(rr_a, np.array([e]), ones, Tarr, ones, Tarr, zero, 0.0, 0.5, level, kind, False)
         else:
-            got = gen.np_profiles(rr_a, r_a, np.array([e]), ones, Tarr, zero, Tarr, ones, 0.0, 0.5, level, kind, True)
+            got = gen.np_profiles(rr_a, np.array([e]), ones, Tarr, zero, Tarr, ones, 0.0, 0.5, level, kind, True)
         # the kernels carry the static piece through `static_c`; add the part's own here
         stat = [complex(v).real for v in (sp.N(q.subs({dd.s0: math.sqrt(rr + e * e), dd.r2: rr, dd.T: T, dd.eps: e}))
                                           for q in dd.static_part(level, part, kind))]

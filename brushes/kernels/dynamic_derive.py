@@ -344,6 +344,15 @@ def prove_chain_rules():
     return ok
 
 
+def prove_code_roots():
+    """The generated code's square roots: pi = S+ S- = sqrt((T^2 - r^2)^2 + eps^2 (2 (T^2 + r^2) +
+    eps^2)) and sigma = S+ + S- = sqrt(2 (r^2 + T^2 + eps^2 + pi)), both radicands sums of
+    non-negative terms and both roots positive, so these are the positive roots."""
+    ok = _is_zero_roots((Sp * Sm) ** 2 - ((T**2 - r**2) ** 2 + eps**2 * (2 * (T**2 + r**2) + eps**2)))
+    ok &= _is_zero_roots((Sp + Sm) ** 2 - 2 * (r**2 + T**2 + eps**2 + Sp * Sm))
+    return ok
+
+
 def prove_levels():
     """impulse = d/dT step; d/dT ramp = step with ramp = 0 at T = 0; every level is 0 at T = 0."""
     W = potentials()
@@ -782,6 +791,7 @@ PROOFS = {
     "antiderivatives G1, G2, G3": prove_antiderivatives,
     "radial wave equation, rest at t = 0": prove_radial_wave,
     "symmetric form and chain rules": prove_chain_rules,
+    "square roots of the generated code": prove_code_roots,
     "impulse, step and ramp levels": prove_levels,
     "potentials solve the Navier equations": prove_potential_identity,
     "radial profile assembly": prove_profile_assembly,
@@ -813,7 +823,8 @@ proves this file matches the derivation.
 
 Profiles are per unit a = 1 / (4 pi mu), like `_generated.py`. A field is `static_c` times the static
 regularized Kelvinlet (its long-time limit) plus wave terms: for one radius e and one front distance
-T = c t, S+- = sqrt((r +- T)^2 + e^2), sig = S+ + S-, pi_ = S+ S-, isig and ipi their inverses.
+T = c t, with S+- = sqrt((r +- T)^2 + e^2), pi_ = S+ S- = sqrt((T^2 - r^2)^2 + e^2 (2 (T^2 + r^2) + e^2))
+and sig = S+ + S- = sqrt(2 (r^2 + T^2 + e^2 + pi_)) (no |r| needed), isig and ipi their inverses.
 Shear fronts sit at ts[j] with coefficients ks[j] (c_s^(2-n) times the term's weight), pressure
 fronts at tp[j] with kp[j] (kappa c_p^(2-n) times it); kernels sum over radii `eps[k]` (weights
 `w[k]`). Level n = 1 impulse, 2 step, 3 ramp; the numba kernels are unrolled over one or two terms.
@@ -882,25 +893,45 @@ def _wave_lines(level, kind, part):
     return tuple(_cse_lines(exprs, _names(kind), prefix))
 
 
-def _front_lines(level, kind, part, T_expr, coef, rad_w, mod):
-    """One wave term: its two square roots, one division, the cse'd profiles, the sums."""
+def _root_lines(T_expr, mod, share):
+    """sigma and pi of one front from r^2, T and eps^2 alone (`prove_code_roots`), and their
+    inverses from one division; with `share` that division also gives is0 = 1 / s0."""
     lines = [f"T = {T_expr}",
-             f"sp_ = {mod}.sqrt((r + T) * (r + T) + ee)",
-             f"sm_ = {mod}.sqrt((r - T) * (r - T) + ee)",
-             "sig = sp_ + sm_",
-             "pi_ = sp_ * sm_",
-             "q = 1.0 / (sig * pi_)",
-             "isig = pi_ * q",
-             "ipi = sig * q"]
-    lines += list(_wave_lines(level, kind, part))
-    lines += [f"{tot} += {rad_w} * {coef} * {nm}" for tot, nm in zip(_totals(kind), _names(kind))]
-    return lines
+             "TT = T * T",
+             "dd_ = TT - rr",
+             f"pi_ = {mod}.sqrt(dd_ * dd_ + ee * (2.0 * (TT + rr) + ee))",
+             f"sig = {mod}.sqrt(2.0 * (rr + TT + ee + pi_))"]
+    if share:
+        lines += ["sp_ = sig * pi_", "Q = 1.0 / (s0 * sp_)", "is0 = sp_ * Q", "q = s0 * Q"]
+    else:
+        lines += ["q = 1.0 / (sig * pi_)"]
+    return lines + ["isig = pi_ * q", "ipi = sig * q"]
 
 
-def _static_block(kind, rad_w, mod):
-    lines = [f"s0 = {mod}.sqrt(rr + ee)", "is0 = 1.0 / s0"]
-    lines += list(_static_lines(kind))
-    lines += [f"{tot} += {rad_w} * static_c * {nm}" for tot, nm in zip(_totals(kind), _names(kind))]
+def _wave_block(level, kind, part, coef, rad_w):
+    lines = list(_wave_lines(level, kind, part))
+    return lines + [f"{tot} += {rad_w} * {coef} * {nm}" for tot, nm in zip(_totals(kind), _names(kind))]
+
+
+def _static_block(kind, rad_w):
+    lines = list(_static_lines(kind))
+    return lines + [f"{tot} += {rad_w} * static_c * {nm}" for tot, nm in zip(_totals(kind), _names(kind))]
+
+
+def _radius_body(level, kind, fronts, rad_w, mod, *, share):
+    """Lines for one radius: the static part (not for the impulse) and every front
+    [(part, T expression, coefficient expression)]; `share` merges the static part's division
+    into the first front's."""
+    static = level != "impulse"
+    lines = [f"s0 = {mod}.sqrt(rr + ee)"] if static else []
+    for i, (part, T_expr, coef) in enumerate(fronts):
+        first = i == 0 and static
+        lines += _root_lines(T_expr, mod, share and first)
+        if first:
+            if not share:
+                lines.append("is0 = 1.0 / s0")
+            lines += _static_block(kind, rad_w)
+        lines += _wave_block(level, kind, part, coef, rad_w)
     return lines
 
 
@@ -910,19 +941,33 @@ _GRAB_HEAD = """\
         m0, m1, m2 = move[0], move[1], move[2]
         c0, c1, c2 = center[0], center[1], center[2]
 {setup}
-        for i in numba.prange(n):
-            r0 = points[i, 0] - c0
-            r1 = points[i, 1] - c1
-            r2 = points[i, 2] - c2
-            rr = r0 * r0 + r1 * r1 + r2 * r2
-            r = math.sqrt(rr)
-            ta = 0.0
-            tb = 0.0
+        for b in numba.prange((n + BLOCK - 1) // BLOCK):
+            lo = b * BLOCK
+            m = min(BLOCK, n - lo)
+            rrv = np.empty(BLOCK)
+            tav = np.empty(BLOCK)
+            tbv = np.empty(BLOCK)
+            for k in range(m):
+                r0 = points[lo + k, 0] - c0
+                r1 = points[lo + k, 1] - c1
+                r2 = points[lo + k, 2] - c2
+                rrv[k] = r0 * r0 + r1 * r1 + r2 * r2
+            for k in range(m):
+                rr = rrv[k]
+                ta = 0.0
+                tb = 0.0
 {radii}
-            rm = (r0 * m0 + r1 * m1 + r2 * m2) * tb
-            out[i, 0] = ta * m0 + rm * r0
-            out[i, 1] = ta * m1 + rm * r1
-            out[i, 2] = ta * m2 + rm * r2
+                tav[k] = ta
+                tbv[k] = tb
+            for k in range(m):
+                r0 = points[lo + k, 0] - c0
+                r1 = points[lo + k, 1] - c1
+                r2 = points[lo + k, 2] - c2
+                ta = tav[k]
+                rm = (r0 * m0 + r1 * m1 + r2 * m2) * tbv[k]
+                out[lo + k, 0] = ta * m0 + rm * r0
+                out[lo + k, 1] = ta * m1 + rm * r1
+                out[lo + k, 2] = ta * m2 + rm * r2
         return out
 """
 
@@ -935,26 +980,42 @@ _AFFINE_HEAD = """\
         F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
         F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]
 {setup}
-        for i in numba.prange(n):
-            r0 = points[i, 0] - c0
-            r1 = points[i, 1] - c1
-            r2 = points[i, 2] - c2
-            rr = r0 * r0 + r1 * r1 + r2 * r2
-            r = math.sqrt(rr)
-            tp_ = 0.0
-            tq = 0.0
-            ts_ = 0.0
+        for b in numba.prange((n + BLOCK - 1) // BLOCK):
+            lo = b * BLOCK
+            m = min(BLOCK, n - lo)
+            rrv = np.empty(BLOCK)
+            tpv = np.empty(BLOCK)
+            tqv = np.empty(BLOCK)
+            tsv = np.empty(BLOCK)
+            for k in range(m):
+                r0 = points[lo + k, 0] - c0
+                r1 = points[lo + k, 1] - c1
+                r2 = points[lo + k, 2] - c2
+                rrv[k] = r0 * r0 + r1 * r1 + r2 * r2
+            for k in range(m):
+                rr = rrv[k]
+                tp_ = 0.0
+                tq = 0.0
+                ts_ = 0.0
 {radii}
-            f0 = F00 * r0 + F01 * r1 + F02 * r2
-            f1 = F10 * r0 + F11 * r1 + F12 * r2
-            f2 = F20 * r0 + F21 * r1 + F22 * r2
-            g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
-            g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
-            g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
-            rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts_
-            out[i, 0] = tp_ * f0 + tq * g0 + rfr * r0
-            out[i, 1] = tp_ * f1 + tq * g1 + rfr * r1
-            out[i, 2] = tp_ * f2 + tq * g2 + rfr * r2
+                tpv[k] = tp_
+                tqv[k] = tq
+                tsv[k] = ts_
+            for k in range(m):
+                r0 = points[lo + k, 0] - c0
+                r1 = points[lo + k, 1] - c1
+                r2 = points[lo + k, 2] - c2
+                tp_, tq, ts_ = tpv[k], tqv[k], tsv[k]
+                f0 = F00 * r0 + F01 * r1 + F02 * r2
+                f1 = F10 * r0 + F11 * r1 + F12 * r2
+                f2 = F20 * r0 + F21 * r1 + F22 * r2
+                g0 = F00 * r0 + F10 * r1 + F20 * r2 + tr * r0
+                g1 = F01 * r0 + F11 * r1 + F21 * r2 + tr * r1
+                g2 = F02 * r0 + F12 * r1 + F22 * r2 + tr * r2
+                rfr = (r0 * f0 + r1 * f1 + r2 * f2) * ts_
+                out[lo + k, 0] = tp_ * f0 + tq * g0 + rfr * r0
+                out[lo + k, 1] = tp_ * f1 + tq * g1 + rfr * r1
+                out[lo + k, 2] = tp_ * f2 + tq * g2 + rfr * r2
         return out
 """
 
@@ -984,15 +1045,14 @@ def _numba_kernels():
                                   for j in range(nt)]
                         radii = []
                         for k in range(K):
-                            body = [f"ee = e_{k} * e_{k}"]
-                            if level != "impulse":
-                                body += _static_block(kind, f"w_{k}", "math")
+                            fronts = []
                             for j in range(nt):
-                                body += _front_lines(level, kind, "shear", f"ts_{j}", f"ks_{j}", f"w_{k}", "math")
+                                fronts.append(("shear", f"ts_{j}", f"ks_{j}"))
                                 if compressible:
-                                    body += _front_lines(level, kind, "pressure", f"tp_{j}", f"kp_{j}", f"w_{k}",
-                                                         "math")
-                            radii += _indented(body, 12)
+                                    fronts.append(("pressure", f"tp_{j}", f"kp_{j}"))
+                            body = [f"ee = e_{k} * e_{k}"] + _radius_body(level, kind, fronts, f"w_{k}", "math",
+                                                                           share=True)
+                            radii += _indented(body, 16)
                         head = _GRAB_HEAD if kind == "grab" else _AFFINE_HEAD
                         text = (head.replace("{name}", name).replace("{setup}", "\n".join(setup))
                                 .replace("{radii}", "\n".join(radii)))
@@ -1000,16 +1060,18 @@ def _numba_kernels():
                         names.append(f"    {name!r}: {name},")
     return ("\n\ndef _numba_kernels():\n"
             '    """The numba backend, compiled lazily per kernel: parallel loops over points, radii and\n'
-            '    wave terms unrolled so the point loop vectorizes."""\n'
+            '    wave terms unrolled; points go in blocks of BLOCK whose squared distances and profile\n'
+            '    sums sit in contiguous local arrays, so the heavy loop vectorizes."""\n'
             "    import numba\n\n"
+            "    BLOCK = 512\n"
             "    opts = dict(parallel=True, cache=True, fastmath=True, nogil=True)\n\n"
             + "\n".join(funcs) + "\n    return {\n" + "\n".join(names) + "\n    }\n")
 
 
 def _numpy_profiles():
-    """`np_profiles(rr, r, eps, w, ts, ks, tp, kp, static_c, beta, level, kind, compressible)`."""
-    lines = ["", "", "def np_profiles(rr, r, eps, w, ts, ks, tp, kp, static_c, beta, level, kind, compressible):",
-             '    """Sums over radii and wave terms of the profiles, vectorized over rr = |r|^2 and r = |r|."""']
+    """`np_profiles(rr, eps, w, ts, ks, tp, kp, static_c, beta, level, kind, compressible)`."""
+    lines = ["", "", "def np_profiles(rr, eps, w, ts, ks, tp, kp, static_c, beta, level, kind, compressible):",
+             '    """Sums over radii and wave terms of the profiles, vectorized over rr = |r|^2."""']
     first = True
     for kind in ("grab", "affine"):
         for level in LEVELS:
@@ -1019,11 +1081,11 @@ def _numpy_profiles():
             lines.append("        for k in range(eps.shape[0]):")
             body = ["ee = float(eps[k]) ** 2", "wk = float(w[k])"]
             if level != "impulse":
-                body += _static_block(kind, "wk", "np")
+                body += ["s0 = np.sqrt(rr + ee)", "is0 = 1.0 / s0"] + _static_block(kind, "wk")
             body.append("for j in range(ts.shape[0]):")
-            body += _indented(_front_lines(level, kind, "shear", "ts[j]", "ks[j]", "wk", "np"), 4)
+            body += _indented(_root_lines("ts[j]", "np", False) + _wave_block(level, kind, "shear", "ks[j]", "wk"), 4)
             body.append("    if compressible:")
-            body += _indented(_front_lines(level, kind, "pressure", "tp[j]", "kp[j]", "wk", "np"), 8)
+            body += _indented(_root_lines("tp[j]", "np", False) + _wave_block(level, kind, "pressure", "kp[j]", "wk"), 8)
             lines += _indented(body, 12)
             lines.append(f"        return {', '.join(_totals(kind))}")
     lines.append("    raise ValueError(f'no profiles for {kind!r} at level {level!r}')")
@@ -1035,7 +1097,7 @@ _NUMPY_ASSEMBLY = """
 def np_dyn_grab(points, center, move, eps, w, ts, ks, tp, kp, static_c, beta, out, level, compressible):
     r_ = np.subtract(points, center, dtype=np.float64)
     rr = np.einsum("ij,ij->i", r_, r_)
-    ta, tb = np_profiles(rr, np.sqrt(rr), eps, w, ts, ks, tp, kp, static_c, beta, level, "grab", compressible)
+    ta, tb = np_profiles(rr, eps, w, ts, ks, tp, kp, static_c, beta, level, "grab", compressible)
     rm = (r_ @ move) * tb
     np.multiply(ta[:, None], move[None, :], out=out)
     out += rm[:, None] * r_
@@ -1045,8 +1107,7 @@ def np_dyn_grab(points, center, move, eps, w, ts, ks, tp, kp, static_c, beta, ou
 def np_dyn_affine(points, center, F, eps, w, ts, ks, tp, kp, static_c, beta, out, level, compressible):
     r_ = np.subtract(points, center, dtype=np.float64)
     rr = np.einsum("ij,ij->i", r_, r_)
-    tp_, tq, ts_ = np_profiles(rr, np.sqrt(rr), eps, w, ts, ks, tp, kp, static_c, beta, level, "affine",
-                               compressible)
+    tp_, tq, ts_ = np_profiles(rr, eps, w, ts, ks, tp, kp, static_c, beta, level, "affine", compressible)
     tr = np.trace(F)
     fr = r_ @ F.T
     gr = r_ @ F + tr * r_
