@@ -5,7 +5,7 @@ Ratios are measured in one process against baselines on the same data:
 - a straightforward numpy evaluation of the same formula (the 3x3 kernel matrix per point,
   or the third-order gradient tensor for the affine loads, then a contraction).
 
-Sections: kernels, flow, startup, io, batch, picking, drag. Figures go to stdout as a table.
+Sections: kernels, flow, startup, io, batch, picking, drag, handles. Figures go to stdout as a table.
 """
 from __future__ import annotations
 
@@ -157,7 +157,60 @@ def bench_drag_section(n):
     _section(f"viewer drag update: {n:,} vertices", "benchmarks.drag", "bench_drag", n)
 
 
-SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag")
+def _ring(k, spacing_radii, radius):
+    """k handle centres on a circle, `spacing_radii` radii apart, and moves of one radius each."""
+    ring = k * spacing_radii * radius / (2 * math.pi)
+    a = 2 * math.pi * np.arange(k) / k
+    centers = ring * np.stack([np.cos(a), np.sin(a), np.zeros(k)], axis=1)
+    rng = np.random.default_rng(3)
+    d = rng.normal(size=(k, 3))
+    moves = radius * d / np.linalg.norm(d, axis=1, keepdims=True)
+    return centers, moves, ring
+
+
+def bench_handles(n, k=8):
+    """Handles: one field evaluation against k separate grabs, and the flow's evaluations per unit
+    of gradient bound against a grab's, on the same points in one process."""
+    radius = 0.25
+    centers, moves, ring = _ring(k, 4.0, radius)
+    rng = np.random.default_rng(4)
+    pts = rng.normal(scale=0.5 * ring, size=(n, 3))
+    buf = np.empty_like(pts)
+    rots = rng.normal(size=(k, 3)) * 30.0
+    grabs = [brushes.Grab(c, radius, m) for c, m in zip(centers, moves)]
+    twists = [brushes.Twist(c, radius, r, float(np.linalg.norm(r))) for c, r in zip(centers, rots)]
+    h = brushes.Handles(centers, radius, moves)
+    hr = brushes.Handles(centers, radius, moves, rotations=rots)
+
+    def separate(items):
+        for b in items:
+            b.displacement(pts, out=buf)
+
+    print(f"\n## handles: k = {k} on {n:,} points (handles {4.0:g} radii apart, moves of one radius)")
+    print(f"{'field evaluation':40s} {'ms':>8s} {'/ separate':>11s}")
+    # interleaved best-of, so a busy machine slows both sides alike
+    t_grabs = t_h = t_twists = t_hr = math.inf
+    for _ in range(5):
+        t_grabs = min(t_grabs, _best(lambda: separate(grabs), repeat=1))
+        t_h = min(t_h, _best(lambda: h.displacement(pts, out=buf), repeat=1))
+        t_twists = min(t_twists, _best(lambda: separate(grabs + twists), repeat=1))
+        t_hr = min(t_hr, _best(lambda: hr.displacement(pts, out=buf), repeat=1))
+    print(f"{f'{k} separate grabs':40s} {t_grabs * 1e3:8.2f} {1.0:11.2f}")
+    print(f"{f'Handles, {k} forces':40s} {t_h * 1e3:8.2f} {t_h / t_grabs:11.2f}")
+    print(f"{f'{k} separate grabs + {k} twists':40s} {t_twists * 1e3:8.2f} {t_twists / t_grabs:11.2f}")
+    print(f"{f'Handles, {k} forces + {k} twist loads':40s} {t_hr * 1e3:8.2f} {t_hr / t_grabs:11.2f} "
+          f"({t_hr / t_twists:.2f} of grabs + twists)")
+    print(f"\n{'flow':40s} {'L':>6s} {'steps':>5s} {'evals':>5s} {'evals/L':>7s} {'ms':>9s}")
+    cases = [("grab, move = radius", grabs[0]), (f"Handles, {k} moves of a radius", h),
+             (f"Handles, {k} moves + turns to 30 deg", hr)]
+    for name, b in cases:
+        stats = FlowStats()
+        t = _best(lambda: b.apply(pts, stats=stats), repeat=1)
+        L = max(b.velocity_lipschitz_at(t_) for t_ in np.linspace(0, 1, 9))
+        print(f"{name:40s} {L:6.2f} {stats.steps:5d} {stats.evaluations:5d} {stats.evaluations / L:7.1f} {t * 1e3:9.1f}")
+
+
+SECTIONS = ("kernels", "flow", "startup", "io", "batch", "picking", "drag", "handles")
 
 
 def main(argv=None):
@@ -174,7 +227,8 @@ def main(argv=None):
     for s in chosen:
         {"kernels": lambda: bench_kernels(args.points), "flow": lambda: bench_flow(args.points),
          "startup": bench_startup, "io": lambda: bench_io(1_000_000), "batch": lambda: bench_batch_section(200),
-         "picking": lambda: bench_picking_section(1_000_000), "drag": lambda: bench_drag_section(200_000)}[s]()
+         "picking": lambda: bench_picking_section(1_000_000), "drag": lambda: bench_drag_section(200_000),
+         "handles": lambda: bench_handles(args.points)}[s]()
     return 0
 
 
