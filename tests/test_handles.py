@@ -437,6 +437,23 @@ def test_fused_kernel_numba_matches_numpy(falloff):
                                slow, rtol=0, atol=1e-6 * np.abs(slow).max())
 
 
+def test_small_lu_matches_lapack():
+    # the handles' single-threaded elimination against scipy's LAPACK getrf, same output layout
+    import scipy.linalg
+
+    from brushes.handles import lu_factor
+
+    rng = np.random.default_rng(81)
+    for n in (1, 3, 24, 150):
+        M = rng.normal(size=(n, n))
+        lu, piv = lu_factor(M)
+        ref_lu, ref_piv = scipy.linalg.lu_factor(M)
+        np.testing.assert_array_equal(piv, ref_piv)
+        np.testing.assert_allclose(lu, ref_lu, rtol=0, atol=1e-10)
+        b = rng.normal(size=n)
+        np.testing.assert_allclose(M @ scipy.linalg.lu_solve((lu, piv), b), b, rtol=0, atol=1e-9)
+
+
 # --- recipes and the command -----------------------------------------------------------------------------
 
 
