@@ -13,6 +13,8 @@ module                    job
 ``handles``               click to place handles; drag one to its target while the others
                           hold (Shift turns it); one ``handles`` recipe stroke per drag
 ``export``                Ctrl+S, Ctrl+E, Ctrl+D: recipe, posed mesh, corrective shape
+``playback``              F5 plays the strokes so far as motion with their secondary motion,
+                          F6 the settle of the stroke just made, F7 steps a frame
 ========================  ===================================================================
 
 The contract (base classes in :mod:`viewer.tools.base`)
@@ -58,11 +60,11 @@ class to :data:`REGISTERED` below. Its key, its extra key rows and their actions
 README table); nothing else changes. Keys must not clash (a test checks the table).
 """
 
-from viewer.tools import export, handles, mask, pins, strokes
+from viewer.tools import export, handles, mask, pins, playback, strokes
 from viewer.tools.base import Commands, Tool
 
 __all__ = ["REGISTERED", "Commands", "Tool"]
 
 #: Every tool and command set, in the order their keys appear in the help panel.
 REGISTERED = (strokes.Grab, strokes.Twist, strokes.Scale, strokes.Pinch, pins.Pins, mask.Mask,
-              handles.Handles, export.Export)
+              handles.Handles, export.Export, playback.Playback)
