@@ -180,6 +180,18 @@ def test_linear_pinned_field_is_the_unique_elastic_correction(kind):
     np.testing.assert_allclose(b.apply(x, flow=False, pins=pins), expected, rtol=0, atol=1e-10)
 
 
+@pytest.mark.parametrize("kind", ["grab", "twist", "pinch"])
+def test_pins_are_handles_that_do_not_move(kind):
+    # the counter-field is the Handles field (wide falloff, the brush's radius and Poisson's ratio)
+    # whose handles sit at the pins and move by minus the brush's field there
+    b = make_brush(kind)
+    pins = random_pins(b, 5, seed=9)
+    x = probes(10)
+    counter = brushes.Handles(pins, b.radius, -b.displacement(pins), poisson=b.poisson)
+    np.testing.assert_allclose(b.apply(x, flow=False, pins=pins), x + b.displacement(x) + counter.displacement(x),
+                               rtol=0, atol=1e-12)
+
+
 def test_pinned_grab_flow_matches_scipy_integration():
     b = make_brush("grab")
     pins = random_pins(b, 4, seed=5)
