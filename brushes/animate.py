@@ -46,7 +46,7 @@ LONG_ANIMATION = 1_000_000
 RAMP_SHARE = 0.5
 FRAMES_FORMAT = "pliant-frames"
 FRAMES_VERSION = 1
-_ANIMATED_KINDS = ("grab", "twist", "scale", "pinch")
+_ANIMATED_KINDS = ("grab", "twist", "scale", "pinch", "handles")
 
 
 def chunk_params(kind, params, a, b):
@@ -54,9 +54,10 @@ def chunk_params(kind, params, a, b):
     stroke of its own, flowed over [0, 1].
 
     Grab: its centre is carried along, so the chunk is a grab from center + a move by (b - a)
-    move. Twist, scale and pinch have velocity fields constant in pseudo-time, so the chunk is
-    the brush with strength times (b - a) (scale: factor to the power b - a). Pins are solved for
-    each velocity, so they carry over unchanged.
+    move; handles likewise (their loads are solved linearly in the moves and rotations, so the
+    chunk's targets are (b - a) times theirs). Twist, scale and pinch have velocity fields
+    constant in pseudo-time, so the chunk is the brush with strength times (b - a) (scale:
+    factor to the power b - a). Pins are solved for each velocity, so they carry over unchanged.
     """
     out = dict(params)
     d = b - a
@@ -70,6 +71,12 @@ def chunk_params(kind, params, a, b):
         out["factor"] = float(params["factor"]) ** d
     elif kind == "pinch":
         out["gradient"] = [[d * float(v) for v in row] for row in params["gradient"]]
+    elif kind == "handles":   # handles at c + t move with the same targets: solved linearly in them
+        moves = np.asarray(params["moves"], dtype=np.float64)
+        out["centers"] = (np.asarray(params["centers"], dtype=np.float64) + a * moves).tolist()
+        out["moves"] = (d * moves).tolist()
+        if params.get("rotations") is not None:
+            out["rotations"] = (d * np.asarray(params["rotations"], dtype=np.float64)).tolist()
     else:
         raise checks.FieldError("brush", f"{kind!r} strokes cannot be animated; the secondary motion is "
                                 "derived for " + ", ".join(_ANIMATED_KINDS))

@@ -34,6 +34,7 @@ import numpy as np
 
 from brushes import checks, kernels
 from brushes.brush import Brush, Grab, Pinch, Scale, Twist
+from brushes.handles import Handles
 from brushes.mirror import Mirrored
 
 LOADS = ("step", "impulse")
@@ -103,11 +104,32 @@ def _sources(brush, pins):
         out = [_Source("grab", brush.center, brush.move, brush._eps, brush._wn, brush._beta)]
     elif type(brush) in (Twist, Scale, Pinch):   # the affine loads ([dGJ17] sec. 4)
         out = [_Source("affine", brush.center, brush._load, brush._eps, brush._w, brush._beta)]
+    elif type(brush) is Handles:
+        return _handle_sources(brush, pins)
     else:
-        raise checks.FieldError("brush", "the dynamic response is derived for grab, twist, scale and pinch "
-                                f"brushes and their mirrors, got {type(brush).__name__}")
+        raise checks.FieldError("brush", "the dynamic response is derived for grab, twist, scale, pinch and "
+                                f"handles brushes and their mirrors, got {type(brush).__name__}")
     if pins is not None and len(pins):
         out += _pin_sources(brush, pins)
+    return out
+
+
+def _handle_sources(brush, pins):
+    """A Handles brush is a sum of regularized loads at its handles (and pins, solved with them):
+    a point load normalized as Grab's move and a twist load normalized as Twist's radians at each
+    (`brushes.handles`), so each becomes the Grab and the Twist with that move and rotation."""
+    held = brush if pins is None or not len(pins) else brush.pinned(pins, flow=False)
+    forces, torques = held.loads(0.0)
+    extra = np.zeros((0, 3)) if pins is None else pins
+    points = np.concatenate([brush.centers, extra])
+    radii = np.concatenate([brush.radii, np.full(len(extra), brush.radius)])
+    out = []
+    for p, r, f, q in zip(points, radii, forces, torques):
+        if np.any(f):
+            out += _sources(Grab(p, r, f, poisson=brush.poisson, falloff=brush.falloff), None)
+        angle = float(np.linalg.norm(q))
+        if angle > 0.0:
+            out += _sources(Twist(p, r, q, math.degrees(angle), poisson=brush.poisson, falloff=brush.falloff), None)
     return out
 
 
@@ -287,7 +309,7 @@ def dynamic(brush, *, shear_speed, load="step", damping=None, ramp=0.0, pins=Non
     """The secondary motion of `brush`: a `Dynamic` whose `displacement(points, t)` is the
     elastodynamic response of an infinite elastic body to the brush's regularized load.
 
-    brush : Grab, Twist, Scale, Pinch or a mirror of one (`brushes.mirror`).
+    brush : Grab, Twist, Scale, Pinch, Handles or a mirror of one (`brushes.mirror`).
     shear_speed : float, model units per second (the shear wave speed beta); the pressure wave
         speed follows from the brush's Poisson's ratio (infinite at 0.5).
     load : "step" (switched on at t = 0, settles to `brush.displacement`) or "impulse" (one push:

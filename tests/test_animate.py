@@ -286,14 +286,57 @@ def test_chunk_params_compose_to_the_whole_stroke():
     assert animate.chunk_params("scale", s.params, 0.25, 0.75)["factor"] == pytest.approx(1.5 ** 0.5)
 
 
-def test_recipes_that_cannot_be_animated():
+class Bump(brushes.Brush):
+    """A third-party brush (registry plugin): a bump along +y with no elastic load."""
+
+    kind = "bump"
+
+    def __init__(self, center, radius, height):
+        self.center = np.asarray(center, dtype=np.float64)
+        self.radius, self.height = float(radius), float(height)
+
+    def params(self):
+        return {"center": self.center.tolist(), "radius": self.radius, "height": self.height}
+
+    def displacement(self, points, out=None):
+        u = np.zeros((len(points), 3))
+        u[:, 1] = self.height * np.exp(-np.sum((points - self.center) ** 2, axis=1) / self.radius**2)
+        return u
+
+
+@pytest.fixture
+def bump():
+    from brushes import registry
+    registry.register("bump", Bump)
+    yield
+    registry.unregister("bump")
+
+
+def test_recipes_that_cannot_be_animated(bump):
     with pytest.raises(FieldError, match="^strokes: .*nothing to animate"):
         animate.check_recipe(Recipe(()))
-    handles = Stroke("handles", {"centers": [[0, 0, 0]], "radius": 0.3, "moves": [[0.1, 0, 0]]})
-    with pytest.raises(FieldError, match=r"^strokes\[1\]\.brush: 'handles' strokes cannot be animated"):
-        animate.check_recipe(Recipe((_recipe().strokes[0], handles)))
+    other = Stroke("bump", {"center": [0, 0, 0], "radius": 0.3, "height": 0.1})
+    with pytest.raises(FieldError, match=r"^strokes\[1\]\.brush: 'bump' strokes cannot be animated"):
+        animate.check_recipe(Recipe((_recipe().strokes[0], other)))
     with pytest.raises(FieldError, match="^fps: "):
         animate.frame_times(1.0, 0)
+
+
+def test_handles_strokes_flow_in_chunks_and_settle(tmp_path):
+    # Handles (several points moved and turned at once) animate too: the chunked flow is the
+    # stroke's flow (the recipe API as reference) and the last frame its pose.
+    doc = load_mesh(_mesh(tmp_path, subdivisions=2))
+    d = {"brush": "handles", "centers": [[0, 0, 1.0], [0.7, 0, 0.7]], "radius": [0.4, 0.3],
+         "moves": [[0.2, 0, 0.05], [0.0, 0.1, 0.1]], "rotations": [[0, 0, 20], [0, 0, 0]]}
+    recipe = parse_recipe({**RECIPE, "strokes": [d]})
+    s = recipe.strokes[0]
+    whole = s.apply(doc.vertices)
+    a = Stroke(s.kind, animate.chunk_params(s.kind, s.params, 0.0, 0.3)).apply(doc.vertices)
+    b = Stroke(s.kind, animate.chunk_params(s.kind, s.params, 0.3, 1.0)).apply(a)
+    assert np.abs(b - whole).max() <= 1e-4 * np.abs(whole - doc.vertices).max()
+    times, exact = animate.frames(recipe, doc.vertices, seconds=0.5, fps=10, shear_speed=2.0)
+    assert np.abs(exact[-1] - whole).max() <= 1e-4 * np.abs(whole - doc.vertices).max()
+    assert np.abs(exact[3] - exact[-1]).max() > 1e-4
 
 
 # --------------------------------------------------------------------------- the command
@@ -344,13 +387,13 @@ def test_command_refuses_bad_input_with_exit_2(tmp_path, capsys, args, message):
     assert not (tmp_path / "a.glb").exists()                   # nothing half-written is left
 
 
-def test_command_names_the_stroke_that_cannot_be_animated(tmp_path, capsys):
+def test_command_names_the_stroke_that_cannot_be_animated(tmp_path, capsys, bump):
     data = {**RECIPE, "strokes": RECIPE["strokes"][:1] + [
-        {"brush": "handles", "centers": [[0, 0, 0.5]], "radius": 0.3, "moves": [[0.1, 0, 0]]}]}
+        {"brush": "bump", "center": [0, 0, 0.5], "radius": 0.3, "height": 0.1}]}
     mesh, recipe = _mesh(tmp_path, subdivisions=1), _recipe_file(tmp_path, data)
     assert cli.main(["animate", str(recipe), str(mesh), "-o", str(tmp_path / "a.glb")]) == 2
     err = capsys.readouterr().err
-    assert "strokes[1].brush: 'handles' strokes cannot be animated" in err
+    assert "strokes[1].brush: 'bump' strokes cannot be animated" in err
     assert not (tmp_path / "a.glb").exists()
 
 

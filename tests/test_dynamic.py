@@ -445,8 +445,30 @@ def test_bad_calls_name_their_field():
         dyn.displacement([[0, 0, 0]], 0.1, out=np.empty((2, 3)))
     with pytest.raises(ValueError, match="^brush: "):
         brushes.dynamic("grab", shear_speed=1.0)
-    handles = brushes.Handles([[0, 0, 0]], 0.3, moves=[[0.1, 0, 0]]) if hasattr(brushes, "Handles") else None
-    if handles is not None:
-        with pytest.raises(ValueError, match="^brush: .*grab, twist, scale and pinch"):
-            brushes.dynamic(handles, shear_speed=1.0)
+    class Bump(brushes.Brush):   # a third-party field: no elastic load to send waves
+        kind = "bump"
+
+        def displacement(self, points, out=None):
+            return np.zeros((len(points), 3))
+
+    with pytest.raises(ValueError, match="^brush: .*grab, twist, scale, pinch and handles"):
+        brushes.dynamic(Bump(), shear_speed=1.0)
     assert isinstance(dyn, Dynamic)
+
+
+def test_handles_are_their_loads_in_motion():
+    # A handles brush is a sum of regularized point and twist loads (brushes.handles): its motion
+    # settles to its static field (the handles on their targets, turned as asked), also pinned,
+    # and solves the Navier equations like any sum of them.
+    h = brushes.Handles([[0.0, 0.0, 0.0], [0.3, 0.1, 0.0]], [0.2, 0.15], [[0.05, 0.1, 0.0], [0.0, 0.0, 0.08]],
+                        rotations=[[0, 0, 20.0], [10.0, 0, 0]], poisson=0.3)
+    x = np.random.default_rng(9).normal(size=(200, 3)) * 0.4
+    dyn = brushes.dynamic(h, shear_speed=1.5)
+    np.testing.assert_allclose(dyn.limit(x), h.displacement(x), rtol=0, atol=1e-12)
+    late = dyn.displacement(h.centers, 1000.0)
+    np.testing.assert_allclose(late, h.moves, rtol=0, atol=1e-9)       # the handles' guarantee
+    pins = np.array([[-0.4, 0.0, 0.0]])
+    held = brushes.dynamic(h, shear_speed=1.5, pins=pins)
+    assert np.abs(held.limit(pins)).max() <= 1e-12
+    np.testing.assert_allclose(held.limit(x), h.pinned(pins, flow=False).displacement(x), rtol=0, atol=1e-12)
+    assert np.abs(dyn.displacement(x, 0.0)).max() == 0.0

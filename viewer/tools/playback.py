@@ -194,3 +194,45 @@ class Playback(Commands):
             target = (self.index + 1) % len(self.frames)
         self._show(session, target)
         return f"frame {self.index + 1} of {len(self.frames)} at {self.times[self.index]:.2f} s"
+
+
+# --------------------------------------------------------------------------- README picture
+
+#: The README's settle strip: one grab of the mascot's right hand, played over one second.
+STRIP_STROKE = {"brush": "grab", "center": [-0.50, 0.78, 0.07], "radius": 0.35, "move": [-0.12, 0.30, 0.10]}
+STRIP_TIMES = (0.1, 0.25, 0.4, 0.55, 0.8)
+
+
+def render_settle_strip(path, *, shear_speed=1.5, tile=(320, 400), models=None):
+    """Write the README's picture strip of a settle (PNG): the mascot at `STRIP_TIMES` while
+    `STRIP_STROKE` flows in over its first half second and settles, coloured by how far each
+    point is from where it would be without inertia (the secondary motion), on one colour
+    scale for the whole strip. Rendered with the snapshot renderer; returns the path."""
+    from PIL import Image
+
+    from brushes import animate
+    from brushes.atomic import atomic_write
+    from brushes.demo import find_models
+    from brushes.formats import load_mesh
+    from brushes.recipe import parse_recipe
+    from viewer.snapshot import render_pixels
+
+    doc = load_mesh(find_models(models)[0])
+    recipe = parse_recipe({"format": "pliant-recipe", "version": 1, "strokes": [STRIP_STROKE]})
+    fps = 40.0
+    times, frames = animate.frames(recipe, doc.vertices, groups=doc.groups, seconds=1.0, fps=fps,
+                                   shear_speed=shear_speed)
+    _, still = animate.frames(recipe, doc.vertices, groups=doc.groups, seconds=1.0, fps=fps, shear_speed=1e9)
+    lag = np.linalg.norm(frames - still, axis=2)
+    bounds = np.array([frames.min(axis=(0, 1)), frames.max(axis=(0, 1))])
+    tiles = []
+    for t in STRIP_TIMES:
+        j = int(round(t * fps))
+        # one vertex no face uses carries the strip's largest lag: every tile shares the ramp
+        vertices = np.vstack([frames[j], frames[j][:1]])
+        tiles.append(render_pixels(vertices, doc.faces, size=tile, view="front,pitch=5,zoom=1.0", bounds=bounds,
+                                   magnitude=np.append(lag[j], lag.max())))
+    with atomic_write(path, mode="wb") as handle:
+        Image.fromarray(np.concatenate(tiles, axis=1), mode="RGB").save(handle, format="PNG")
+    return path
+
