@@ -22,8 +22,8 @@ stored float32 numbers, is within `tolerance` of every exact frame at every vert
 vector is one morph target; an animation channel on the morph weights plays them (linear
 interpolation between frames). The exact frames can also be kept as an .npz.
 
-Memory: the frames are held in float64, about 24 bytes x vertices x frames, twice over while
-they are compressed.
+Memory: the frames are held in float64, 24 bytes per vertex per frame, and the compression
+works on copies of them: up to `PEAK_BYTES` per vertex per frame at its peak.
 """
 from __future__ import annotations
 
@@ -42,6 +42,9 @@ from brushes.atomic import atomic_write
 
 #: Vertex-frames (frames x vertices) from which the command shows a progress bar.
 LONG_ANIMATION = 1_000_000
+#: Peak memory of a job per vertex per frame (bytes): the frames, their offsets, the residual
+#: of the truncated SVD and a rebuilt copy, float64 each, and a temporary.
+PEAK_BYTES = 120
 #: Share of a stroke's slot over which its load rises and its pose flows (the rest is settling).
 RAMP_SHARE = 0.5
 FRAMES_FORMAT = "pliant-frames"

@@ -609,7 +609,7 @@ def cmd_snapshot(args) -> int:
     return EXIT_OK
 
 
-#: Memory the frames may take (bytes, float64, twice over while compressing) before animate refuses.
+#: Memory the frames may take before animate refuses (bytes; see `_animate.PEAK_BYTES`).
 ANIMATE_MEMORY = 8 * 2**30
 
 
@@ -628,7 +628,7 @@ def cmd_animate(args) -> int:
     from brushes import animate as _animate
 
     count = len(_animate.frame_times(args.seconds, args.fps))
-    need = 2 * 24 * count * len(doc.vertices)
+    need = _animate.PEAK_BYTES * count * len(doc.vertices)
     if need > ANIMATE_MEMORY:
         raise CliError(f"--seconds/--fps: {count} frames of {len(doc.vertices)} vertices need about "
                        f"{need / 2**30:.0f} GiB; shorten the animation or lower the frame rate")

@@ -375,6 +375,7 @@ def test_command_shows_progress_on_long_animations(tmp_path, capsys, monkeypatch
     (["-o", "{tmp}/a.glb", "--fps", "nan"], "--fps: must be a positive number"),
     (["-o", "{tmp}/a.glb", "--shear-speed", "fast"], "--shear-speed: expected a number"),
     (["-o", "{tmp}/a.glb", "--tolerance", "1e-12"], "tolerance: .*float32"),
+    (["-o", "{tmp}/a.glb", "--seconds", "1e7"], "--seconds/--fps: .* GiB; shorten the animation"),
 ])
 def test_command_refuses_bad_input_with_exit_2(tmp_path, capsys, args, message):
     mesh, recipe = _mesh(tmp_path, subdivisions=1), _recipe_file(tmp_path)
