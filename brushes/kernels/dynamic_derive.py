@@ -65,7 +65,7 @@ from __future__ import annotations
 
 import argparse
 import functools
-import itertools
+import inspect
 import os
 import sys
 import time
@@ -1023,12 +1023,13 @@ _AFFINE_HEAD = """\
 TERM_COUNTS = (1, 2)
 
 
-_KERNEL_NAME_SOURCE = '''
 def kernel_name(kind, level, K, terms, compressible):
     """Name of the numba kernel for `K` radii and `terms` wave terms (pressure part if compressible)."""
     return f"dyn_{kind}_{level}_{K}x{terms}{'_p' if compressible else ''}"
-'''
-exec(_KERNEL_NAME_SOURCE)   # defines kernel_name here; the same text is emitted into the generated file
+
+
+#: The same function's text, emitted into the generated file (the engine then needs no sympy).
+_KERNEL_NAME_SOURCE = "\n" + inspect.getsource(kernel_name)
 
 
 def _numba_kernels():
