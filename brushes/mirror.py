@@ -72,6 +72,11 @@ class Mirrored(Brush):
     def velocity_lipschitz(self):
         return 2.0 * self.brush.velocity_lipschitz()
 
+    def velocity_lipschitz_at(self, t):
+        """Twice the inner brush's bound at t (the reflection is an isometry): a brush bounded
+        at each stage time (Handles) keeps that check when mirrored."""
+        return 2.0 * self.brush.velocity_lipschitz_at(t)
+
     def reach(self, tol):
         return np.inf  # two centres: the viewer falls back to evaluating every vertex
 

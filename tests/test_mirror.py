@@ -267,3 +267,23 @@ def test_params_name_the_plane_and_the_brush():
     assert p["brush"]["kind"] == "twist"
     rebuilt = brushes.Twist(**{k: v for k, v in p["brush"].items() if k != "kind"})
     assert rebuilt == b
+
+
+def test_mirrored_handles_keep_their_per_stage_bound():
+    # The reflection x -> R x is an isometry, so |J_m| <= |J(x)| + |H J(Rx) H| <= 2 sup |J|
+    # (triangle inequality; H orthogonal): the mirrored bound at t is twice the inner one at t.
+    import brushes
+    from brushes.flow import FlowStats, steps_for
+
+    h = brushes.Handles([[0.6, 0.0, 0.0], [0.6, 0.8, 0.0]], 0.4, [[0.3, 0.2, 0.0], [0.0, 0.0, 0.0]])
+    m = brushes.mirror(h, (1, 0, 0))
+    for t in (0.0, 0.3, 0.5, 1.0):
+        assert m.velocity_lipschitz_at(t) == 2.0 * h.velocity_lipschitz_at(t)
+    pts = np.random.default_rng(3).normal(scale=0.5, size=(200, 3))
+    stats = FlowStats()
+    out = m.apply(pts, stats=stats)
+    # at least the fold-free count for the bound at the start, never fewer (flow.steps_for)
+    assert stats.steps >= steps_for(m.velocity_lipschitz_at(0.0))
+    # symmetric across the plane, as every mirrored flow (u_m(R x) = H u_m(x))
+    R = np.diag([-1.0, 1.0, 1.0])
+    np.testing.assert_allclose(m.apply(pts @ R), out @ R, rtol=0, atol=1e-9)
