@@ -18,13 +18,12 @@ import itertools
 import numpy as np
 
 from viewer import gesture
-from viewer.tools.base import Tool
+from viewer.tools.strokes import MOD_SHIFT, BrushTool
 
 __all__ = ["Handles", "HANDLE_PICK_PIXELS"]
 
 #: Screen distance (window units) within which a press takes hold of a handle.
 HANDLE_PICK_PIXELS = 12.0
-MOD_SHIFT = 1  # pyglet.window.key.MOD_SHIFT
 _drags = itertools.count(1)
 
 
@@ -35,14 +34,15 @@ class _Drag:
         self.__dict__.update(data)
 
 
-class Handles(Tool):
+class Handles(BrushTool):
+    """Drag, release and cancel are the brush tools' (the exact preview, then one commit);
+    this class says what a press takes hold of and which stroke the drag stands for."""
+
     name = "handles"
     label = "handles"
     key = "7"
     summary = ("handles tool: click the surface to place a handle; drag a handle to move it "
                "while the others hold (Shift+drag turns it)")
-    brush = True
-    edits = True
     orbit_off_model = False  # a handle drawn at the model's edge may be pressed off the model
     bindings = (("End", "handles_clear", "remove every handle"),)
 
@@ -63,44 +63,17 @@ class Handles(Tool):
         mirror = None if plane is None else {"normal": plane[0].tolist(), "point": plane[1].tolist()}
         weights = (1.0 - session.hold) if np.any(session.hold > 0) else None
         return _Drag(id=next(_drags), index=index, start=start, current=start,
-                     base=np.array(session.history.points), turn=bool(modifiers & MOD_SHIFT),
+                     base=np.array(session.history.points), invert=bool(modifiers & MOD_SHIFT),
                      centers=np.array(self.centers), radius=session.radius,
                      falloff=session.falloff, poisson=session.poisson.get("grab", 0.5),
                      pins=pins, mirror=mirror, weights=weights, params=None)
 
-    def drag(self, session, state, point, modifiers):
-        state.turn = bool(modifiers & MOD_SHIFT)
-        try:
-            key, job = self._request(session, state, point)
-        except ValueError as exc:  # handles too close, a pin on a handle: the message names them
-            session.say(f"stroke refused: {exc}")
-            return
-        session.request_preview(key, job)
-
     def release(self, session, state, point, modifiers):
-        state.turn = bool(modifiers & MOD_SHIFT)
-        if point == state.start:
-            session.restore()
-            return
-        try:
-            key, job = self._request(session, state, point)
-            stroke = self.stroke(state).to_dict()
-        except ValueError as exc:
-            session.restore()
-            session.say(f"stroke refused: {exc}")
-            return
-        result = session.previews.wait(key, job)
-        if result.error is not None:
-            session.restore()
-            session.say(f"stroke refused: {result.error}")
-            return
-        session.commit(stroke, points=result.value["points"])
-        moved = state.centers + np.asarray(state.params["moves"])
-        self.centers = [c for c in moved]
-        session.markers_changed()
-
-    def cancel(self, session, state):
-        session.restore()
+        before = session.history.position
+        super().release(session, state, point, modifiers)
+        if session.history.position > before:  # committed: each handle sits where it went
+            self.centers = list(state.centers + np.asarray(state.params["moves"]))
+            session.markers_changed()
 
     def outline(self, session, state):
         center = state.centers[state.index]
@@ -133,12 +106,12 @@ class Handles(Tool):
     @staticmethod
     def params_for(session, state, point):
         """The Handles keyword arguments for the cursor at ``point``: the dragged handle moves
-        (or turns, with ``state.turn``) by the gesture, every other handle holds."""
+        (or turns, with Shift held: ``state.invert``) by the gesture, every other handle holds."""
         k = len(state.centers)
         moves = np.zeros((k, 3))
         rotations = None
         center = state.centers[state.index]
-        if state.turn:
+        if state.invert:
             twist = gesture.twist(session.camera, center, state.radius, state.start, point, session.width)
             rotations = np.zeros((k, 3))
             rotations[state.index] = np.asarray(twist["axis"]) * twist["degrees"]
@@ -170,4 +143,4 @@ class Handles(Tool):
         def job():
             return brush.apply(base, flow=flow, pins=pins, mask=weights)
 
-        return (state.id, point, state.turn), job
+        return (state.id, point, state.invert), job
