@@ -48,9 +48,9 @@ FAR_WIDEN = 1.0 + 2 * (3 * 2.0**-53) / (1 - 3 * 2.0**-53)
 EDGE_TOL = 1e-9
 # Triangles per leaf. A refit reads each leaf's distinct vertices, and a shared vertex is read
 # once per leaf that uses it: on a 1M-triangle torus, leaves of 8 read 1.51M vertices and
-# leaves of 32 read 1.02M, with a quarter of the boxes, which took the refit from 5.1 to 3.4 ms
-# in one process on the 2-core machine, while a pick stayed at 0.04-0.05 ms
-# (``python -m benchmarks.picking``; 64 gave 3.3 ms).
+# leaves of 32 read 1.02M, with a quarter of the boxes. That took the refit from 5.1-5.3 ms
+# to 2.5-3.2 ms on the 2-core machine, while a pick stayed at 0.04-0.05 ms
+# (``python -m benchmarks.picking``; leaves of 64 gave 3.3 ms).
 LEAF_SIZE = 32
 # Ray direction components smaller than this are replaced by it (sign kept) before inverting.
 TINY = 1e-300
