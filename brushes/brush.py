@@ -312,16 +312,8 @@ class Twist(_Affine):
         field evaluation for any angle."""
         if type(self) is not Twist:
             return None
-        q = self.axis
-        r = points - self.center
-        v = self.velocity(points, 0.0)
-        c = np.cross(q, r)
-        cc = np.einsum("ij,ij->i", c, c)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            ang = np.where(cc > 0.0, np.einsum("ij,ij->i", v, c) / np.where(cc > 0.0, cc, 1.0), 0.0)
-        cos, sin = np.cos(ang)[:, None], np.sin(ang)[:, None]
-        qr = (r @ q)[:, None]
-        return self.center + r * cos + c * sin + q[None, :] * qr * (1.0 - cos)
+        pts = np.ascontiguousarray(points, dtype=np.float64)
+        return kernels.turn_about_axis(pts, self.center, self.axis, self.velocity(pts, 0.0))
 
 
 class Scale(_Affine):

@@ -283,6 +283,30 @@ def test_numba_kernels_match_numpy_kernels_directly():
             assert np.abs(got - ref).max() <= 1e-12 * np.abs(ref).max()
 
 
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+def test_turn_about_axis_is_scipys_rotation(backend, monkeypatch):
+    # The twist's closed-form flow: each point turned about the axis by phi = v . c / |c|^2.
+    # Outside reference: scipy's Rotation.from_rotvec (right-hand rule) applied point by point.
+    from scipy.spatial.transform import Rotation
+    if backend == "numpy":
+        monkeypatch.setenv("PLIANT_BACKEND", "numpy")
+    elif kernels.numba_module() is None:
+        pytest.skip("numba is not importable here")
+    rng = np.random.default_rng(21)
+    center, axis = rng.normal(size=3), unit_rows(rng, 1)[0]
+    pts = center + rng.normal(size=(500, 3))
+    pts[:3] = center + np.outer([0.0, 1.5, -2.0], axis)  # on the axis (to rounding): they stay
+    phi = rng.uniform(-3 * np.pi, 3 * np.pi, len(pts))
+    r = pts - center
+    velocity = phi[:, None] * np.cross(axis, r)
+    got = kernels.turn_about_axis(pts, center, axis, velocity)
+    expected = center + Rotation.from_rotvec(phi[:, None] * axis).apply(r)
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-13 * (1 + np.abs(pts).max()))
+    np.testing.assert_allclose(got[:3], pts[:3], rtol=0, atol=1e-14 * (1 + np.abs(pts).max()))
+    with pytest.raises(ValueError, match="velocity"):
+        kernels.turn_about_axis(pts, center, axis, velocity[:-1])
+
+
 # --------------------------------------------------------------------------------------------
 # 13. The tabulated gradient bounds
 # --------------------------------------------------------------------------------------------

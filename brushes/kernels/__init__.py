@@ -27,10 +27,11 @@ from brushes.kernels.backend import (
     radial_bound,
     reach_of,
     scales,
+    turn_about_axis,
 )
 
 __all__ = ["FALLOFFS", "affine_displacement", "affine_jacobian", "affine_magnitude_bound", "affine_map",
            "affine_reach", "backend_name", "beta_of", "center_value", "grab_displacement", "grab_jacobian",
            "grab_magnitude_bound", "grab_reach", "grab_response", "gradient_bound", "gradient_envelope",
            "handle_profiles", "handles_displacement", "numba_module",
-           "prefer_sleeping_threads", "radial_bound", "reach_of", "scales"]
+           "prefer_sleeping_threads", "radial_bound", "reach_of", "scales", "turn_about_axis"]

@@ -121,6 +121,58 @@ def affine_map(points, A, b, out=None):
     return _AFFINE_MAP(pts, A, b, res)
 
 
+_TURN = None
+
+
+def turn_about_axis(points, center, axis, velocity, out=None):
+    """Each point turned about the line through `center` (3,) along the unit `axis` (3,) by the
+    angle phi = v . c / |c|^2, c = axis x (x - center), v its row of `velocity` (n, 3): the
+    closed-form flow of a field v = w(x) (axis x r) whose w depends only on what the turn keeps
+    (Rodrigues' rotation formula). Points on the axis (c = 0) stay. Returns (n, 3) float64.
+
+    One parallel pass under numba (the numpy form takes about ten array passes); numpy otherwise.
+    """
+    global _TURN
+    pts = _as_points(points)
+    vel = _as_points(velocity)
+    if vel.shape != pts.shape:
+        raise ValueError(f"velocity: must have shape {pts.shape}, got {vel.shape}")
+    res = _out(out, pts.shape)
+    c0 = np.ascontiguousarray(center, dtype=np.float64)
+    q = np.ascontiguousarray(axis, dtype=np.float64)
+    numba = numba_module()
+    if numba is None:
+        r = pts - c0
+        c = np.cross(q, r)
+        cc = np.einsum("ij,ij->i", c, c)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            ang = np.where(cc > 0.0, np.einsum("ij,ij->i", vel, c) / np.where(cc > 0.0, cc, 1.0), 0.0)
+        cos, sin = np.cos(ang)[:, None], np.sin(ang)[:, None]
+        res[...] = c0 + r * cos + c * sin + q[None, :] * (r @ q)[:, None] * (1.0 - cos)
+        return res
+    if _TURN is None:
+        @numba.njit(parallel=True, cache=True, nogil=True)
+        def _turn(p, c0, q, v, out):
+            for i in numba.prange(p.shape[0]):
+                rx, ry, rz = p[i, 0] - c0[0], p[i, 1] - c0[1], p[i, 2] - c0[2]
+                cx = q[1] * rz - q[2] * ry
+                cy = q[2] * rx - q[0] * rz
+                cz = q[0] * ry - q[1] * rx
+                cc = cx * cx + cy * cy + cz * cz
+                ang = 0.0
+                if cc > 0.0:
+                    ang = (v[i, 0] * cx + v[i, 1] * cy + v[i, 2] * cz) / cc
+                co, si = np.cos(ang), np.sin(ang)
+                qr = (rx * q[0] + ry * q[1] + rz * q[2]) * (1.0 - co)
+                out[i, 0] = c0[0] + rx * co + cx * si + q[0] * qr
+                out[i, 1] = c0[1] + ry * co + cy * si + q[1] * qr
+                out[i, 2] = c0[2] + rz * co + cz * si + q[2] * qr
+            return out
+
+        _TURN = _turn
+    return _TURN(pts, c0, q, vel, res)
+
+
 def _as_points(points):
     """The kernels' own cheap guard: shape and dtype only. Finiteness and the field name are
     checked once at the API's entry (`brushes.checks.points`), not at every RK4 stage."""
