@@ -7,7 +7,7 @@ work out the elastic load that produces what the artist asked for at the brush c
 forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, which imports this
 module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
 What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`,
-`velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `pin_clearance` and `pinned`.
+`velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `fused_mirror_flow`, `pin_clearance` and `pinned`.
 """
 from __future__ import annotations
 
@@ -104,6 +104,14 @@ class Brush:
         None means the flow runs its own RK4 loop over whole arrays. A brush that offers this must
         give what that loop gives with the same `steps` (to rounding); the flow picks `steps` and
         uses it only with no pins. A subclass that changes the field must override this too.
+        """
+        return None
+
+    def fused_mirror_flow(self, points, *, steps, H, shift):
+        """`fused_flow` of this brush together with its mirror image, whose velocity at x is
+        H v(H x + shift) (H = I - 2 n n^T (3, 3), `shift` (3,) along n: `brushes.mirror`), or None
+        (the default: the mirrored brush takes the flow's own RK4 loop). A subclass that changes
+        the field must override this too.
         """
         return None
 
@@ -220,6 +228,15 @@ class Grab(_Kelvinlet):
         pts = np.ascontiguousarray(points, dtype=np.float64)
         return flow_kernels.grab_flow(pts, self.center, self.move, self._eps, self._wn, self._beta, steps)
 
+    def fused_mirror_flow(self, points, *, steps, H, shift):
+        """The grab and its image (centre H c + shift, move H m, also carried along) in one
+        fused pass: the Kelvinlet is covariant, H u(H x + shift; c, m) = u(x; H c + shift, H m)."""
+        if type(self) is not Grab:
+            return None
+        pts = np.ascontiguousarray(points, dtype=np.float64)
+        return flow_kernels.grab_pair_flow(pts, self.center, self.move, H @ self.center + shift, H @ self.move,
+                                           self._eps, self._wn, self._beta, steps)
+
 
 class _Affine(_Kelvinlet):
     """A locally affine brush: the Kelvinlet's gradient contracted with a 3x3 load F (de Goes &
@@ -280,6 +297,16 @@ class _Affine(_Kelvinlet):
         load = self._load_for(self.flow_gradient())
         pts = np.ascontiguousarray(points, dtype=np.float64)
         return flow_kernels.affine_flow(pts, self.center, load, self._eps, self._w, self._beta, steps)
+
+    def fused_mirror_flow(self, points, *, steps, H, shift):
+        """The brush and its image (centre H c + shift, load H F H) in one fused pass: the affine
+        Kelvinlet is covariant, H u(H x + shift; c, F) = u(x; H c + shift, H F H)."""
+        if type(self) not in (Twist, Scale, Pinch):
+            return None
+        load = self._load_for(self.flow_gradient())
+        pts = np.ascontiguousarray(points, dtype=np.float64)
+        return flow_kernels.affine_pair_flow(pts, self.center, load, H @ self.center + shift, H @ load @ H,
+                                             self._eps, self._w, self._beta, steps)
 
 
 class Twist(_Affine):

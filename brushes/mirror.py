@@ -58,6 +58,12 @@ class Mirrored(Brush):
         v += self._flip(self.brush.velocity(self.reflect(points), t))
         return v
 
+    def fused_flow(self, points, *, steps):
+        """The inner brush's fused flow with its image (`Brush.fused_mirror_flow`), or None."""
+        if type(self) is not Mirrored:
+            return None
+        return self.brush.fused_mirror_flow(points, steps=steps, H=self.H, shift=self._shift)
+
     def pin_clearance(self):
         """The inner brush's segments and their mirror images."""
         out = []

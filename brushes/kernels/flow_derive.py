@@ -10,7 +10,9 @@ stage times, the same stage arithmetic and the same closed-form profiles as the 
 * grab: the centre carried along its own motion, velocity u(x - (c + t m)) with the grab's
   profiles A, B ([dGJ17] eq. 9; `brushes.brush.Grab.velocity`);
 * affine (twist, scale, pinch): a fixed load F, velocity P F r + Q (F^T r + tr F r) + S (r . F r) r
-  ([dGJ17] sec. 4; `brushes.brush._Affine.velocity`).
+  ([dGJ17] sec. 4; `brushes.brush._Affine.velocity`);
+* grab_pair, affine_pair: the sum of two such loads, the brush and its mirror image
+  (`brushes.mirror.Mirrored.velocity`, with the image's load given as its own centre and load).
 
 The profile expressions, their common-subexpression blocks and the per-radius unrolling are the
 ones of `brushes.kernels.derive` (imported, not copied), so the fused kernels evaluate the same
@@ -27,6 +29,7 @@ from __future__ import annotations
 
 import argparse
 import os
+import re
 import sys
 import time
 
@@ -43,6 +46,8 @@ grab_flow(points, center, move, eps, w, beta, steps, out): velocity at time t is
     displacement with the centre at center + t * move (weights `w` carry the centre normalization).
 affine_flow(points, center, F, eps, w, beta, steps, out): velocity is the affine displacement of
     the fixed load F (3, 3).
+grab_pair_flow(points, center, move, center_b, move_b, ...), affine_pair_flow(points, center, F,
+    center_b, F_b, ...): velocity is the sum of two loads (a brush and its mirror image).
 points (n, 3) float64 C-contiguous; center, move (3,) float64; eps, w (K,) float64; beta float;
 steps int >= 1; out (n, 3) float64 C-contiguous (may not be `points`). Returns `out`.
 """
@@ -95,6 +100,36 @@ def _affine_stage(src, time_expr, dst, cse, K, indent):
     return "\n".join(lines)
 
 
+#: The names a stage reads its load from, and the names of a pair's second load.
+_SECOND_LOAD = {
+    "grab": {"center": "center_b", "move": "move_b",
+             **{f"{v}{a}": f"{v}{a}b" for v in "cm" for a in range(3)}},
+    "affine": {"center": "center_b", "F": "F_b", "tr": "trb",
+               **{f"c{a}": f"c{a}b" for a in range(3)},
+               **{f"F{a}{b}": f"F{a}{b}b" for a in range(3) for b in range(3)}},
+}
+
+
+def _second_load(text, kind):
+    """`text` reading the pair's second load (whole names only: ``F`` -> ``F_b``, ``F00`` -> ``F00b``)."""
+    names = _SECOND_LOAD[kind]
+    return re.sub(r"\b(" + "|".join(names) + r")\b", lambda m: names[m.group(1)], text)
+
+
+def _pair_stage(kind):
+    """A stage evaluating two loads of `kind` at the same point and time and adding them."""
+    single = {"grab": _grab_stage, "affine": _affine_stage}[kind]
+
+    def stage(src, time_expr, dst, cse, K, indent):
+        pad = " " * indent
+        for name in _SECOND_LOAD[kind]:
+            assert not re.search(rf"\b{name}\b", cse), f"profile block uses the load name {name}"
+        return "\n".join([single(src, time_expr, dst, cse, K, indent),
+                          _second_load(single(src, time_expr, ("v0", "v1", "v2"), cse, K, indent), kind),
+                          f"{pad}{dst[0]} += v0\n{pad}{dst[1]} += v1\n{pad}{dst[2]} += v2"])
+    return stage
+
+
 def _rk4_body(stage, cse, K, indent):
     """One RK4 step of size dt at time ``tau`` on the point (x0, x1, x2), in the order `brushes.flow`
     uses: k1 at x; k2 at x + dt/2 k1; k3 at x + dt/2 k2; k4 at x + dt k3;
@@ -126,6 +161,10 @@ _SETUP = {
         F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
         F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]"""),
 }
+for _kind in ("grab", "affine"):
+    _args, _setup = _SETUP[_kind]
+    _SETUP[_kind + "_pair"] = (_args + ", " + _second_load(_args, _kind),
+                               _setup + "\n" + _second_load(_setup, _kind))
 
 #: Points per block: a block's positions stay in the processor's cache while every RK4 stage runs
 #: over it in a loop with no branches, which the compiler vectorizes (a loop over steps inside
@@ -176,10 +215,12 @@ def _numba_block():
     grab_u, _, aff_u, _ = derive._profile_exprs()
     cse = {"grab": derive._cse_block(grab_u, ["pa", "pb"], 20, "g"),
            "affine": derive._cse_block(aff_u, ["pp", "pq", "ps"], 20, "h")}
-    stages = {"grab": _grab_stage, "affine": _affine_stage}
+    cse["grab_pair"], cse["affine_pair"] = cse["grab"], cse["affine"]
+    stages = {"grab": _grab_stage, "affine": _affine_stage,
+              "grab_pair": _pair_stage("grab"), "affine_pair": _pair_stage("affine")}
     counts = sorted({len(r) for r in derive.FALLOFF_RATIOS.values()})
     funcs, names = [], []
-    for kind in ("grab", "affine"):
+    for kind in ("grab", "affine", "grab_pair", "affine_pair"):
         args, setup = _SETUP[kind]
         for K in counts:
             radii_setup = "\n".join(f"        e_{k} = eps[{k}]\n        w_{k} = w[{k}]" for k in range(K))
@@ -206,6 +247,15 @@ def _np_grab_velocity(x, tau, center, move, eps, w, beta, out):
 def _np_affine_velocity(x, tau, center, F, eps, w, beta, out):
     from brushes.kernels import _generated
     return _generated.np_affine_displacement(x, center, F, eps, w, beta, out)
+
+
+def _np_pair(velocity):
+    """The velocity of two loads: `center` and `load` are pairs (the brush, its mirror image)."""
+    def both(x, tau, center, load, eps, w, beta, out):
+        velocity(x, tau, center[0], load[0], eps, w, beta, out)
+        out += velocity(x, tau, center[1], load[1], eps, w, beta, np.empty_like(out))
+        return out
+    return both
 
 
 def _np_flow(velocity, points, center, load, eps, w, beta, steps, out):
@@ -274,6 +324,30 @@ def affine_flow(points, center, F, eps, w, beta, steps, out=None):
     if fn is None:
         return _np_flow(_np_affine_velocity, points, center, F, eps, w, float(beta), steps, out)
     return fn(points, center, np.ascontiguousarray(F, dtype=np.float64), eps, w, float(beta), steps, out)
+
+
+def grab_pair_flow(points, center, move, center_b, move_b, eps, w, beta, steps, out=None):
+    """`steps` RK4 steps of two grabs carried along their motions (a grab and its mirror image):
+    (n, 3) float64 positions at t = 1."""
+    out, steps = _checked(points, out, steps)
+    fn = _kernel("grab_pair", len(eps))
+    if fn is None:
+        return _np_flow(_np_pair(_np_grab_velocity), points, (center, center_b), (move, move_b), eps, w,
+                        float(beta), steps, out)
+    return fn(points, center, move, center_b, move_b, eps, w, float(beta), steps, out)
+
+
+def affine_pair_flow(points, center, F, center_b, F_b, eps, w, beta, steps, out=None):
+    """`steps` RK4 steps of two fixed affine loads (a brush and its mirror image): (n, 3) float64
+    positions at t = 1."""
+    out, steps = _checked(points, out, steps)
+    fn = _kernel("affine_pair", len(eps))
+    F = np.ascontiguousarray(F, dtype=np.float64)
+    F_b = np.ascontiguousarray(F_b, dtype=np.float64)
+    if fn is None:
+        return _np_flow(_np_pair(_np_affine_velocity), points, (center, center_b), (F, F_b), eps, w,
+                        float(beta), steps, out)
+    return fn(points, center, F, center_b, F_b, eps, w, float(beta), steps, out)
 '''
 
 
