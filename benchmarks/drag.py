@@ -29,7 +29,7 @@ import time
 
 import numpy as np
 
-__all__ = ["bench_drag", "SIZES"]
+__all__ = ["bench_drag", "bench_tools", "SIZES"]
 
 SIZES = (200_000, 655_000, 1_000_000)
 
@@ -151,14 +151,61 @@ def bench_drag(n_vertices=200_000, *, repeats=10):
     return result
 
 
+def bench_tools(n_vertices=655_000, *, repeats=5):
+    """The brush part of each tool's stroke (``Brush.apply`` with the flow, as the preview
+    worker computes it) on a wavy torus, radius 0.12 of its size, wide falloff.
+
+    Returns a list of ``(name, ms, ratio to np.add over the same vertices, RK4 steps)``: grab,
+    twist (30 degrees), scale (1.3), pinch, each with a mirror across the torus's symmetry plane,
+    and a grab holding one pin.
+    """
+    import brushes
+    from brushes.flow import FlowStats
+    from benchmarks.picking import wavy_torus
+
+    vertices, _ = wavy_torus(2 * int(n_vertices))
+    buf = np.empty_like(vertices)
+    add_ms = _median_ms(lambda: np.add(vertices, 1.0, out=buf), max(5 * repeats, 20))
+    size = float(np.ptp(vertices, axis=0).max())
+    c = vertices[np.argmax(vertices[:, 0])]
+    r = 0.12 * size
+    made = {"grab": brushes.Grab(c, r, [0.0, 0.05 * size, 0.0]),
+            "twist": brushes.Twist(c, r, [1.0, 0.0, 0.0], 30.0),
+            "scale": brushes.Scale(c, r, 1.3),
+            "pinch": brushes.Pinch(c, r, [[0.3, 0.0, 0.0], [0.0, -0.3, 0.0], [0.0, 0.0, 0.0]])}
+    rows = []
+    for name, b in list(made.items()) + [(f"{k} + mirror", brushes.mirror(v, [1.0, 0.0, 0.0]))
+                                         for k, v in made.items()]:
+        rows.append((name, b, None))
+    rows.append(("grab + 1 pin", made["grab"], c + [0.0, -0.3 * size, 0.0]))
+    out = []
+    for name, b, pin in rows:
+        pins = None if pin is None else pin[None, :]
+        b.apply(vertices[:64], pins=pins)  # compiles or loads the kernels
+        stats = FlowStats()
+        ms = _median_ms(lambda: b.apply(vertices, pins=pins, stats=stats), repeats)
+        out.append((name, ms, ms / add_ms, stats.steps))
+    return out
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="python -m benchmarks.drag",
                                      description="time the parts of one drag update of the viewer")
     parser.add_argument("n_vertices", nargs="*", type=int, default=list(SIZES))
     parser.add_argument("--repeats", type=int, default=10)
+    parser.add_argument("--tools", action="store_true",
+                        help="instead: the brush part of every tool's stroke at each size")
     args = parser.parse_args(argv)
     from brushes.kernels import prefer_sleeping_threads
     prefer_sleeping_threads()  # as the `pliant` command does before the viewer's first kernel
+    if args.tools:
+        sizes = args.n_vertices if argv and any(not a.startswith("-") for a in argv) else [655_000]
+        for n in sizes:
+            print(f"| stroke, about {n:,} vertices | brush part | ratio to np.add | RK4 steps |")
+            print("| --- | --- | --- | --- |")
+            for name, ms, ratio, steps in bench_tools(n, repeats=args.repeats):
+                print(f"| {name} | {ms:.1f} ms | {ratio:.1f}x | {steps} |", flush=True)
+        return 0
     print("| vertices | np.add | brush (exact flow) | normals | of which NormalField | upload | UI thread | "
           "refit | normals redone | preview vs commit |")
     print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
