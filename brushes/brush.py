@@ -398,20 +398,17 @@ class Scale(_Affine):
         ray from the centre by the radial ODE's solution, solved once on a table of radii."""
         if type(self) is not Scale:
             return None
-        rho0, spline = self.radial_flow_table
-        r = points - self.center
-        d = np.sqrt(np.einsum("ij,ij->i", r, r))
-        lo, hi = rho0[0], rho0[-1]
-        lr = np.empty_like(d)
-        inner = d <= lo
-        outer = d >= hi
-        mid = ~(inner | outer)
-        lr[mid] = spline(np.log(d[mid]))
+        _, spline = self.radial_flow_table
+        knots = spline.x
+        pts = np.ascontiguousarray(points, dtype=np.float64)
         # near the centre the core grows by exactly `factor` (log ratio -> log factor, error O(rho^2))
-        lr[inner] = math.log(self.factor)
-        if np.any(outer):
-            lr[outer] = self._radial_rate(d[outer])  # far field: g is tiny and nearly constant
-        return self.center + r * np.exp(lr)[:, None]
+        out, far = kernels.slide_along_rays(pts, self.center, knots[0], (knots[-1] - knots[0]) / (len(knots) - 1),
+                                            spline.c, math.log(self.factor))
+        if far.any():  # past the table: g is tiny and nearly constant there
+            r = pts[far] - self.center
+            d = np.sqrt(np.einsum("ij,ij->i", r, r))
+            out[far] = self.center + r * np.exp(self._radial_rate(d))[:, None]
+        return out
 
 
 class Pinch(_Affine):

@@ -307,6 +307,36 @@ def test_turn_about_axis_is_scipys_rotation(backend, monkeypatch):
         kernels.turn_about_axis(pts, center, axis, velocity[:-1])
 
 
+@pytest.mark.parametrize("backend", ["numba", "numpy"])
+def test_slide_along_rays_evaluates_scipys_spline(backend, monkeypatch):
+    # The scale's table flow: points slide along their rays by exp(s(log |r|)). Outside
+    # reference: scipy's own CubicSpline evaluation of the same spline.
+    from scipy.interpolate import CubicSpline
+    if backend == "numpy":
+        monkeypatch.setenv("PLIANT_BACKEND", "numpy")
+    elif kernels.numba_module() is None:
+        pytest.skip("numba is not importable here")
+    knots = np.linspace(-3.0, 2.0, 41)
+    spline = CubicSpline(knots, 0.3 * np.sin(2.0 * knots) + 0.1 * knots)
+    rng = np.random.default_rng(22)
+    center = rng.normal(size=3)
+    dirs = unit_rows(rng, 400)
+    logr = np.concatenate([rng.uniform(-2.99, 1.99, 396), [-5.0, -3.5, 2.5, 4.0]])
+    pts = center + dirs * np.exp(logr)[:, None]
+    pts[0] = center  # the centre itself stays
+    got, far = kernels.slide_along_rays(pts, center, knots[0], knots[1] - knots[0], spline.c, 0.7)
+    r = pts - center
+    inside = (logr > -3.0) & (logr < 2.0)
+    inside[0] = False
+    expected = center + r[inside] * np.exp(spline(logr[inside]))[:, None]
+    np.testing.assert_allclose(got[inside], expected, rtol=0, atol=1e-12 * np.abs(pts).max())
+    np.testing.assert_allclose(got[[396, 397]], center + r[[396, 397]] * math.exp(0.7), rtol=1e-13)
+    np.testing.assert_allclose(got[0], center, rtol=0, atol=0)
+    assert far.tolist() == [False] * 398 + [True, True]  # past the last knot: left to the caller
+    with pytest.raises(ValueError, match="coefficients"):
+        kernels.slide_along_rays(pts, center, knots[0], 0.1, spline.c[:3], 0.7)
+
+
 # --------------------------------------------------------------------------------------------
 # 13. The tabulated gradient bounds
 # --------------------------------------------------------------------------------------------

@@ -27,6 +27,7 @@ from brushes.kernels.backend import (
     radial_bound,
     reach_of,
     scales,
+    slide_along_rays,
     turn_about_axis,
 )
 
@@ -34,4 +35,4 @@ __all__ = ["FALLOFFS", "affine_displacement", "affine_jacobian", "affine_magnitu
            "affine_reach", "backend_name", "beta_of", "center_value", "grab_displacement", "grab_jacobian",
            "grab_magnitude_bound", "grab_reach", "grab_response", "gradient_bound", "gradient_envelope",
            "handle_profiles", "handles_displacement", "numba_module",
-           "prefer_sleeping_threads", "radial_bound", "reach_of", "scales", "turn_about_axis"]
+           "prefer_sleeping_threads", "radial_bound", "reach_of", "scales", "slide_along_rays", "turn_about_axis"]

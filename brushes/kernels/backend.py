@@ -173,6 +173,68 @@ def turn_about_axis(points, center, axis, velocity, out=None):
     return _TURN(pts, c0, q, vel, res)
 
 
+_SLIDE = None
+
+
+def slide_along_rays(points, center, start, step, coefficients, core, out=None):
+    """Each point moved along its ray from `center` (3,) to c + r exp(s(log |r|)), where s is the
+    cubic spline with knots start + i * step (i = 0 .. m) and `coefficients` (4, m) in scipy's
+    ``CubicSpline.c`` layout (highest power first), and s = `core` for |r| <= exp(start).
+
+    Returns (out (n, 3) float64, far (n,) bool): rows with log |r| >= start + m * step are past
+    the table, marked in `far` and left for the caller. One parallel pass under numba; numpy
+    otherwise.
+    """
+    global _SLIDE
+    pts = _as_points(points)
+    res = _out(out, pts.shape)
+    c0 = np.ascontiguousarray(center, dtype=np.float64)
+    coef = np.ascontiguousarray(coefficients, dtype=np.float64)
+    if coef.ndim != 2 or coef.shape[0] != 4 or coef.shape[1] < 1:
+        raise ValueError(f"coefficients: must have shape (4, m), got {coef.shape}")
+    m = coef.shape[1]
+    far = np.zeros(len(pts), dtype=bool)
+    numba = numba_module()
+    if numba is None:
+        r = pts - c0
+        with np.errstate(divide="ignore"):
+            x = 0.5 * np.log(np.einsum("ij,ij->i", r, r))
+        far[:] = x >= start + m * step
+        i = np.clip(np.floor((x - start) / step), 0, m - 1)
+        i = np.where(np.isfinite(i), i, 0).astype(np.int64)
+        u = x - (start + i * step)
+        lr = ((coef[0, i] * u + coef[1, i]) * u + coef[2, i]) * u + coef[3, i]
+        lr = np.where(x <= start, core, lr)
+        res[...] = c0 + r * np.exp(np.where(far, 0.0, lr))[:, None]
+        return res, far
+    if _SLIDE is None:
+        @numba.njit(parallel=True, cache=True, nogil=True)
+        def _slide(p, c0, start, step, coef, core, out, far):
+            m = coef.shape[1]
+            end = start + m * step
+            for i in numba.prange(p.shape[0]):
+                r0, r1, r2 = p[i, 0] - c0[0], p[i, 1] - c0[1], p[i, 2] - c0[2]
+                rr = r0 * r0 + r1 * r1 + r2 * r2
+                lr = core
+                if rr > 0.0:
+                    x = 0.5 * math.log(rr)
+                    if x >= end:
+                        far[i] = True
+                        lr = 0.0
+                    elif x > start:
+                        k = min(int((x - start) / step), m - 1)
+                        u = x - (start + k * step)
+                        lr = ((coef[0, k] * u + coef[1, k]) * u + coef[2, k]) * u + coef[3, k]
+                g = math.exp(lr)
+                out[i, 0] = c0[0] + r0 * g
+                out[i, 1] = c0[1] + r1 * g
+                out[i, 2] = c0[2] + r2 * g
+
+        _SLIDE = _slide
+    _SLIDE(pts, c0, float(start), float(step), coef, float(core), res, far)
+    return res, far
+
+
 def _as_points(points):
     """The kernels' own cheap guard: shape and dtype only. Finiteness and the field name are
     checked once at the API's entry (`brushes.checks.points`), not at every RK4 stage."""
