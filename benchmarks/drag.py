@@ -157,7 +157,8 @@ def bench_tools(n_vertices=655_000, *, repeats=5):
 
     Returns a list of ``(name, ms, ratio to np.add over the same vertices, RK4 steps)``: grab,
     twist (30 degrees), scale (1.3), pinch, each with a mirror across the torus's symmetry plane,
-    and a grab holding one pin.
+    a grab holding one pin, and two handles (one moved, with and without a 30-degree turn, one
+    held; then with a pin).
     """
     import brushes
     from brushes.flow import FlowStats
@@ -177,7 +178,14 @@ def bench_tools(n_vertices=655_000, *, repeats=5):
     for name, b in list(made.items()) + [(f"{k} + mirror", brushes.mirror(v, [1.0, 0.0, 0.0]))
                                          for k, v in made.items()]:
         rows.append((name, b, None))
-    rows.append(("grab + 1 pin", made["grab"], c + [0.0, -0.3 * size, 0.0]))
+    pin = c + [0.0, -0.3 * size, 0.0]
+    rows.append(("grab + 1 pin", made["grab"], pin))
+    far = vertices[np.argmin(vertices[:, 0])]
+    handles = brushes.Handles([c, far], r, [[0.0, 0.05 * size, 0.0], [0.0, 0.0, 0.0]])
+    turned = brushes.Handles([c, far], r, [[0.0, 0.05 * size, 0.0], [0.0, 0.0, 0.0]],
+                             rotations=[[0.0, 0.0, 30.0], [0.0, 0.0, 0.0]])
+    rows += [("handles, 2 (one held)", handles, None), ("handles, 2, one turned 30 degrees", turned, None),
+             ("handles, 2 + 1 pin", handles, pin)]
     out = []
     for name, b, pin in rows:
         pins = None if pin is None else pin[None, :]

@@ -7,12 +7,14 @@ work out the elastic load that produces what the artist asked for at the brush c
 forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, which imports this
 module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
 What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`,
-`velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `fused_mirror_flow`, `pin_clearance` and `pinned`.
+`velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `fused_mirror_flow`, `point_loads`,
+`pin_clearance` and `pinned`.
 """
 from __future__ import annotations
 
 import functools
 import math
+from typing import NamedTuple
 
 import numpy as np
 
@@ -35,6 +37,22 @@ def skew(axis):
     """[axis]x: the (3, 3) cross-product matrix, [axis]x @ v == cross(axis, v)."""
     a = np.asarray(axis, dtype=np.float64)
     return np.array([[0.0, -a[2], a[1]], [a[2], 0.0, -a[0]], [-a[1], a[0], 0.0]])
+
+
+class PointLoads(NamedTuple):
+    """Point loads whose summed field is a velocity at one time (`Brush.point_loads`): load l is
+    the force ``forces[l]`` and the twist load ``torques[l]`` at ``centers[l]``, with radii
+    ``eps[l]`` and weights ``weights[l]``, as `brushes.kernels.handles_displacement` sums them.
+
+    centers, forces, torques : (L, 3) float64.  eps, weights : (L, K) float64.  beta : float.
+    """
+
+    centers: np.ndarray
+    forces: np.ndarray
+    torques: np.ndarray
+    eps: np.ndarray
+    weights: np.ndarray
+    beta: float
 
 
 class Brush:
@@ -112,6 +130,16 @@ class Brush:
         H v(H x + shift) (H = I - 2 n n^T (3, 3), `shift` (3,) along n: `brushes.mirror`), or None
         (the default: the mirrored brush takes the flow's own RK4 loop). A subclass that changes
         the field must override this too.
+        """
+        return None
+
+    def point_loads(self, t):
+        """The velocity at pseudo-time t as point loads (`PointLoads`), or None (the default).
+
+        A brush whose velocity is a sum of point loads (grabs, handles, their mirror images)
+        returns them; the flow then runs its RK4 steps, pins included, fused in one pass per
+        point (`brushes.kernels.flow_derive`, ``loads_flow``). A subclass that changes the field
+        must override this too.
         """
         return None
 
@@ -227,6 +255,14 @@ class Grab(_Kelvinlet):
             return None
         pts = np.ascontiguousarray(points, dtype=np.float64)
         return flow_kernels.grab_flow(pts, self.center, self.move, self._eps, self._wn, self._beta, steps)
+
+    def point_loads(self, t):
+        """One force, the move, at the centre carried to center + t * move (None for a subclass)."""
+        if type(self) is not Grab:
+            return None
+        return PointLoads((self.center + t * self.move)[None, :], self.move[None, :], np.zeros((1, 3)),
+                          np.asarray(self._eps, dtype=np.float64)[None, :],
+                          np.asarray(self._wn, dtype=np.float64)[None, :], float(self._beta))
 
     def fused_mirror_flow(self, points, *, steps, H, shift):
         """The grab and its image (centre H c + shift, move H m, also carried along) in one

@@ -33,6 +33,7 @@ import numpy as np
 from brushes import brush as _brush
 from brushes import checks
 from brushes import pins as _pins
+from brushes.kernels import _flow_generated as _flow_kernels
 
 #: Largest h * L of one RK4 step: exp(h L) - 1 <= 0.9 keeps each step one-to-one.
 FOLD_FREE_HL = math.log(1.9)
@@ -125,6 +126,42 @@ def _step_count(brush, extra):
         n = m
 
 
+def _loads_flow(brush, pts, solver, n):
+    """`n` RK4 steps of a brush whose velocity is point loads (`Brush.point_loads`), with the
+    pins' counter-loads added at each stage time as `_rk4_flow`'s field adds them, fused into
+    one pass per point; None when the brush has no point loads."""
+    h = 1.0 / n
+    stages = []
+    for i in range(n):
+        t = i * h
+        for tau in (t, t + 0.5 * h, t + h):  # the stage times of `_rk4_flow`, computed as it does
+            loads = brush.point_loads(tau)
+            if loads is None:
+                return None
+            if solver is not None:
+                loads = (loads, solver.point_loads(brush.velocity(solver.pins, tau)))
+            else:
+                loads = (loads,)
+            stages.append(loads)
+    parts = stages[0]
+    if len({p.beta for p in parts}) != 1:
+        return None
+    K = max(p.eps.shape[1] for p in parts)
+
+    def padded(a, fill):
+        return np.concatenate([a, np.repeat(a[:, -1:] if fill is None else np.full((len(a), 1), fill),
+                                            K - a.shape[1], axis=1)], axis=1)
+
+    # a load with fewer radii than the widest gets copies of its last radius with weight 0
+    eps = np.concatenate([padded(p.eps, None) for p in parts])
+    weights = np.concatenate([padded(p.weights, 0.0) for p in parts])
+    centers = np.stack([np.concatenate([p.centers for p in stage]) for stage in stages])
+    forces = np.stack([np.concatenate([p.forces for p in stage]) for stage in stages])
+    torques = np.stack([np.concatenate([p.torques for p in stage]) for stage in stages])
+    x = np.ascontiguousarray(pts, dtype=np.float64)
+    return _flow_kernels.loads_flow(x, centers, forces, torques, eps, weights, parts[0].beta, n)
+
+
 def _rk4_flow(brush, pts, solver, stats):
     """Classical RK4 over t in [0, 1] with fold-free step count; pins hold at every stage.
 
@@ -145,6 +182,8 @@ def _rk4_flow(brush, pts, solver, stats):
     stats.steps, stats.evaluations = n, 4 * n
     if solver is None and (fused := brush.fused_flow(pts, steps=n)) is not None:
         return fused  # the same RK4 steps, one pass per point (`Brush.fused_flow`)
+    if (fused := _loads_flow(brush, pts, solver, n)) is not None:
+        return fused  # the same RK4 steps of point loads, pins included, one pass per point
     h = 1.0 / n
     x = np.array(pts, dtype=np.float64, order="C")
     k = np.empty_like(x)

@@ -35,7 +35,7 @@ import scipy.linalg
 from scipy.linalg import lapack
 
 from brushes import checks, kernels
-from brushes.brush import Brush, skew
+from brushes.brush import Brush, PointLoads, skew
 
 #: Points closer than this many radii cannot be told apart by the solve.
 SEPARATION = 1e-4
@@ -140,6 +140,13 @@ class LoadSolver:
         """The loads' summed displacement (n, 3) float64 at `points` (n, 3), one pass (written into `out`)."""
         f, q = self._raw(loads)
         return kernels.handles_displacement(points, self.points, f, q, self.eps, self.weights, self._beta, out)
+
+    def point_loads(self, loads):
+        """`loads` as the `PointLoads` whose summed field is `field(., loads)`."""
+        f, q = self._raw(loads)
+        k = len(self.points)
+        return PointLoads(np.array(self.points, dtype=np.float64), f, q, self.eps,
+                          np.tile(np.asarray(self.weights, dtype=np.float64), (k, 1)), float(self._beta))
 
     def jacobian(self, points, loads):
         """The loads' summed Jacobian (n, 3, 3) float64, J[i, a, b] = d u_a / d x_b."""
@@ -428,6 +435,13 @@ class Handles(Brush):
         straight to its target and the pins hold."""
         solver, loads = self._solve_at(t)
         return solver.field(points, loads, out)
+
+    def point_loads(self, t):
+        """The loads solved with the handles at c + t move (None for a subclass)."""
+        if type(self) is not Handles:
+            return None
+        solver, loads = self._solve_at(t)
+        return solver.point_loads(loads)
 
     def velocity_lipschitz_at(self, t):
         solver, loads = self._solve_at(t)

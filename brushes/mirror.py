@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 
 from brushes import checks, kernels
-from brushes.brush import Brush
+from brushes.brush import Brush, PointLoads
 
 
 class Mirrored(Brush):
@@ -63,6 +63,20 @@ class Mirrored(Brush):
         if type(self) is not Mirrored:
             return None
         return self.brush.fused_mirror_flow(points, steps=steps, H=self.H, shift=self._shift)
+
+    def point_loads(self, t):
+        """The inner brush's loads and their images: centre R c, force H f, twist load -H q (an
+        axial vector changes sign under a reflection); None when the inner brush has none."""
+        if type(self) is not Mirrored:
+            return None
+        inner = self.brush.point_loads(t)
+        if inner is None:
+            return None
+        return PointLoads(np.concatenate([inner.centers, self.reflect(inner.centers)]),
+                          np.concatenate([inner.forces, inner.forces @ self.H.T]),
+                          np.concatenate([inner.torques, -(inner.torques @ self.H.T)]),
+                          np.concatenate([inner.eps, inner.eps]), np.concatenate([inner.weights, inner.weights]),
+                          inner.beta)
 
     def pin_clearance(self):
         """The inner brush's segments and their mirror images."""

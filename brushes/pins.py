@@ -63,6 +63,11 @@ class PinSolver:
         out += u
         return out
 
+    def point_loads(self, field_at_pins):
+        """The counter-loads that cancel `field_at_pins` (m, 3), as `brushes.brush.PointLoads`."""
+        loads = self.loads(field_at_pins)
+        return self._solver.point_loads((loads, np.zeros_like(loads)))
+
     def lipschitz(self, loads):
         """Bound of the counter-field's gradient norm for these loads: the sum of each load's own bound."""
         return float(np.linalg.norm(loads, axis=1).sum()) * self._unit_bound

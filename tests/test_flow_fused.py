@@ -9,7 +9,9 @@ import pytest
 from scipy.integrate import solve_ivp
 
 from brushes import flow
+from brushes import kernels
 from brushes.brush import Grab, Pinch, Scale, Twist
+from brushes.handles import Handles
 from brushes.kernels import _flow_generated, flow_derive
 from brushes.mirror import Mirrored
 
@@ -175,6 +177,71 @@ def test_fused_mirror_matches_scipy_dop853_and_is_symmetric():
                         method="DOP853", rtol=1e-10, atol=1e-12)
         assert gap(b.apply(x), sol.y[:, -1].reshape(-1, 3), x) < 1e-4
         assert np.abs(b.apply(b.reflect(x)) - b.reflect(b.apply(x))).max() < 1e-12
+
+
+class PlainHandles(Handles):
+    """A subclass: no point loads, so the flow's generic RK4 loop."""
+
+
+def handles(cls, rotations=None, falloff="wide"):
+    return cls([[0.1, -0.05, 0.2], [-0.4, 0.1, 0.0], [0.2, 0.5, -0.3]], [0.3, 0.25, 0.35],
+               [[0.3, 0.1, -0.1], [0.0, 0.0, 0.0], [-0.1, 0.2, 0.0]], rotations=rotations, falloff=falloff)
+
+
+PIN = [[0.6, -0.5, 0.4], [-0.5, -0.6, 0.5]]
+LOADED = [
+    ("grab + pins", lambda fo: grab(Grab, fo, 0.3, (0.4, 0.1, -0.2)), lambda fo: grab(PlainGrab, fo, 0.3, (0.4, 0.1, -0.2)), PIN),
+    ("mirrored grab + pins", lambda fo: Mirrored(grab(Grab, fo), [0.0, 0.0, 1.0], [0.0, 0.0, -0.3]),
+     lambda fo: PlainMirrored(grab(Grab, fo), [0.0, 0.0, 1.0], [0.0, 0.0, -0.3]), PIN[:1]),
+    ("handles", lambda fo: handles(Handles, falloff=fo), lambda fo: handles(PlainHandles, falloff=fo), None),
+    ("turned handles", lambda fo: handles(Handles, [[0, 0, 40], [0, 0, 0], [10, -20, 0]], fo),
+     lambda fo: handles(PlainHandles, [[0, 0, 40], [0, 0, 0], [10, -20, 0]], fo), None),
+    ("mirrored turned handles", lambda fo: Mirrored(handles(Handles, [[0, 0, 40], [0, 0, 0], [10, -20, 0]], fo),
+                                                    [1.0, 0.3, 0.0], [0.9, 0.0, 0.0]),
+     lambda fo: PlainMirrored(handles(Handles, [[0, 0, 40], [0, 0, 0], [10, -20, 0]], fo),
+                              [1.0, 0.3, 0.0], [0.9, 0.0, 0.0]), None),
+    ("handles + pins", lambda fo: handles(Handles, falloff=fo), lambda fo: handles(PlainHandles, falloff=fo), PIN),
+]
+
+
+@pytest.mark.parametrize("falloff", ["wide", "tight"])
+@pytest.mark.parametrize("name, make, plain, pins", LOADED, ids=[c[0] for c in LOADED])
+def test_fused_point_loads_match_generic_rk4(backend, falloff, name, make, plain, pins):
+    # Brushes made of point loads (and pins' counter-loads) run fused (`Brush.point_loads`,
+    # ``loads_flow``); their subclasses take the generic loop: the two must agree to rounding.
+    x = points(11, n=1300)
+    fused_stats, plain_stats = flow.FlowStats(), flow.FlowStats()
+    fused = make(falloff).apply(x, pins=pins, stats=fused_stats)
+    reference = plain(falloff).apply(x, pins=pins, stats=plain_stats)
+    assert fused_stats == plain_stats
+    assert gap(fused, reference, x) < 1e-12
+
+
+@pytest.mark.parametrize("name, make", [(c[0], c[1]) for c in LOADED], ids=[c[0] for c in LOADED])
+def test_point_loads_sum_to_the_velocity(name, make):
+    b = make("medium")
+    x = points(12, n=200)
+    for t in (0.0, 0.37, 1.0):
+        loads = b.point_loads(t)
+        u = np.zeros_like(x)
+        for l in range(len(loads.centers)):  # each load through the handles' kernel alone
+            u += kernels.handles_displacement(x, loads.centers[l:l + 1], loads.forces[l:l + 1],
+                                              loads.torques[l:l + 1], loads.eps[l:l + 1], loads.weights[l],
+                                              loads.beta)
+        v = b.velocity(x, t)
+        assert np.abs(u - v).max() < 1e-12 * np.abs(v).max()
+
+
+def test_loads_flow_refuses_bad_shapes():
+    x = points(13, n=10)
+    c = np.zeros((3, 1, 3))
+    eps, w = np.full((1, 1), 0.3), np.ones((1, 1))
+    with pytest.raises(ValueError, match="centers"):
+        _flow_generated.loads_flow(x, c[:2], c[:2], c[:2], eps, w, 0.5, 1)
+    with pytest.raises(ValueError, match="w"):
+        _flow_generated.loads_flow(x, c, c, c, eps, np.ones((1, 2)), 0.5, 1)
+    with pytest.raises(ValueError, match="eps"):
+        _flow_generated.loads_flow(x, c, c, c, np.full((2, 1), 0.3), np.ones((2, 1)), 0.5, 1)
 
 
 class PlainTwist(Twist):

@@ -11,6 +11,10 @@ affine_flow(points, center, F, eps, w, beta, steps, out): velocity is the affine
     the fixed load F (3, 3).
 grab_pair_flow(points, center, move, center_b, move_b, ...), affine_pair_flow(points, center, F,
     center_b, F_b, ...): velocity is the sum of two loads (a brush and its mirror image).
+loads_flow(points, centers, forces, torques, eps, w, beta, steps, out): velocity at stage time
+    index s (3 j, 3 j + 1, 3 j + 2 for t = j/steps, (j + 1/2)/steps, (j + 1)/steps) is the sum
+    over loads l of the force forces[s, l] and twist load torques[s, l] at centers[s, l]
+    ((3 steps, L, 3) each), with radii eps[l] and weights w[l] ((L, K) each).
 points (n, 3) float64 C-contiguous; center, move (3,) float64; eps, w (K,) float64; beta float;
 steps int >= 1; out (n, 3) float64 C-contiguous (may not be `points`). Returns `out`.
 """
@@ -132,6 +136,47 @@ def affine_pair_flow(points, center, F, center_b, F_b, eps, w, beta, steps, out=
         return _np_flow(_np_pair(_np_affine_velocity), points, (center, center_b), (F, F_b), eps, w,
                         float(beta), steps, out)
     return fn(points, center, F, center_b, F_b, eps, w, float(beta), steps, out)
+
+
+def _np_loads_velocity(x, stage, centers, loads, eps, w, beta, out):
+    from brushes.kernels import _generated
+    forces, torques = loads
+    out[...] = 0.0
+    part = np.empty_like(out)
+    for l in range(centers.shape[1]):
+        _generated.np_handles_displacement(x, centers[stage, l][None], forces[stage, l][None],
+                                           torques[stage, l][None], eps[l][None], w[l], beta, part)
+        out += part
+    return out
+
+
+def loads_flow(points, centers, forces, torques, eps, w, beta, steps, out=None):
+    """`steps` RK4 steps of a sum of point loads given at every stage time: (n, 3) float64
+    positions at t = 1. centers, forces, torques (3 steps, L, 3); eps, w (L, K)."""
+    out, steps = _checked(points, out, steps)
+    centers, forces, torques = (np.ascontiguousarray(a, dtype=np.float64) for a in (centers, forces, torques))
+    eps, w = np.ascontiguousarray(eps, dtype=np.float64), np.ascontiguousarray(w, dtype=np.float64)
+    L = centers.shape[1] if centers.ndim == 3 else -1
+    for name, a, shape in (("centers", centers, (3 * steps, L, 3)), ("forces", forces, (3 * steps, L, 3)),
+                           ("torques", torques, (3 * steps, L, 3)), ("w", w, eps.shape)):
+        if a.shape != shape or L < 1:
+            raise ValueError(f"{name}: must have shape {(3 * steps, 'L', 3) if name != 'w' else eps.shape}, "
+                             f"got {a.shape}")
+    if eps.ndim != 2 or eps.shape[0] != L:
+        raise ValueError(f"eps: must have shape ({L}, K), got {eps.shape}")
+    fn = _kernel("loads", eps.shape[1])
+    if fn is None:
+        stages = [0]
+
+        def velocity(x, tau, centers_, loads, eps_, w_, beta_, k):
+            # _np_flow evaluates the stages in order t, t + h/2, t + h/2, t + h: index 3j, 3j+1, 3j+1, 3j+2
+            i = stages[0]
+            stages[0] += 1
+            j, r = divmod(i, 4)
+            return _np_loads_velocity(x, 3 * j + (0, 1, 1, 2)[r], centers_, loads, eps_, w_, beta_, k)
+
+        return _np_flow(velocity, points, centers, (forces, torques), eps, w, float(beta), steps, out)
+    return fn(points, centers, forces, torques, eps, w, float(beta), steps, out)
 
 
 def _numba_kernels():
@@ -3215,6 +3260,720 @@ def _numba_kernels():
                 out[start + i, 2] = y2[i]
         return out
 
+    @numba.njit(**opts)
+    def loads_flow_1(points, centers, forces, torques, eps, w, beta, steps, out):
+        n = points.shape[0]
+        L = centers.shape[1]
+        dt = 1.0 / steps
+        dt_half = 0.5 * dt
+        dt_six = dt / 6.0
+        size = 256
+        for b in numba.prange((n + size - 1) // size):
+            start = b * size
+            count = min(n, start + size) - start
+            y0 = np.empty(size)
+            y1 = np.empty(size)
+            y2 = np.empty(size)
+            s0 = np.empty(size)
+            s1 = np.empty(size)
+            s2 = np.empty(size)
+            k0 = np.empty(size)
+            k1 = np.empty(size)
+            k2 = np.empty(size)
+            a0 = np.empty(size)
+            a1 = np.empty(size)
+            a2 = np.empty(size)
+            for i in range(count):
+                y0[i] = points[start + i, 0]
+                y1[i] = points[start + i, 1]
+                y2[i] = points[start + i, 2]
+            for j in range(steps):
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j, l, 0], centers[3 * j, l, 1], centers[3 * j, l, 2]
+                    f0, f1, f2 = forces[3 * j, l, 0], forces[3 * j, l, 1], forces[3 * j, l, 2]
+                    q0, q1, q2 = torques[3 * j, l, 0], torques[3 * j, l, 1], torques[3 * j, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    for i in range(count):
+                        r0 = y0[i] - c0
+                        r1 = y1[i] - c1
+                        r2 = y2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] = k0[i]
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] = k1[i]
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] = k2[i]
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i] * 2.0
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] += k1[i] * 2.0
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] += k2[i] * 2.0
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    s0[i] = k0[i] * dt + y0[i]
+                    a0[i] += k0[i] * 2.0
+                    s1[i] = k1[i] * dt + y1[i]
+                    a1[i] += k1[i] * 2.0
+                    s2[i] = k2[i] * dt + y2[i]
+                    a2[i] += k2[i] * 2.0
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 2, l, 0], centers[3 * j + 2, l, 1], centers[3 * j + 2, l, 2]
+                    f0, f1, f2 = forces[3 * j + 2, l, 0], forces[3 * j + 2, l, 1], forces[3 * j + 2, l, 2]
+                    q0, q1, q2 = torques[3 * j + 2, l, 0], torques[3 * j + 2, l, 1], torques[3 * j + 2, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i]
+                    y0[i] += a0[i] * dt_six
+                    a1[i] += k1[i]
+                    y1[i] += a1[i] * dt_six
+                    a2[i] += k2[i]
+                    y2[i] += a2[i] * dt_six
+            for i in range(count):
+                out[start + i, 0] = y0[i]
+                out[start + i, 1] = y1[i]
+                out[start + i, 2] = y2[i]
+        return out
+
+    @numba.njit(**opts)
+    def loads_flow_2(points, centers, forces, torques, eps, w, beta, steps, out):
+        n = points.shape[0]
+        L = centers.shape[1]
+        dt = 1.0 / steps
+        dt_half = 0.5 * dt
+        dt_six = dt / 6.0
+        size = 256
+        for b in numba.prange((n + size - 1) // size):
+            start = b * size
+            count = min(n, start + size) - start
+            y0 = np.empty(size)
+            y1 = np.empty(size)
+            y2 = np.empty(size)
+            s0 = np.empty(size)
+            s1 = np.empty(size)
+            s2 = np.empty(size)
+            k0 = np.empty(size)
+            k1 = np.empty(size)
+            k2 = np.empty(size)
+            a0 = np.empty(size)
+            a1 = np.empty(size)
+            a2 = np.empty(size)
+            for i in range(count):
+                y0[i] = points[start + i, 0]
+                y1[i] = points[start + i, 1]
+                y2[i] = points[start + i, 2]
+            for j in range(steps):
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j, l, 0], centers[3 * j, l, 1], centers[3 * j, l, 2]
+                    f0, f1, f2 = forces[3 * j, l, 0], forces[3 * j, l, 1], forces[3 * j, l, 2]
+                    q0, q1, q2 = torques[3 * j, l, 0], torques[3 * j, l, 1], torques[3 * j, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    for i in range(count):
+                        r0 = y0[i] - c0
+                        r1 = y1[i] - c1
+                        r2 = y2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] = k0[i]
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] = k1[i]
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] = k2[i]
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i] * 2.0
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] += k1[i] * 2.0
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] += k2[i] * 2.0
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    s0[i] = k0[i] * dt + y0[i]
+                    a0[i] += k0[i] * 2.0
+                    s1[i] = k1[i] * dt + y1[i]
+                    a1[i] += k1[i] * 2.0
+                    s2[i] = k2[i] * dt + y2[i]
+                    a2[i] += k2[i] * 2.0
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 2, l, 0], centers[3 * j + 2, l, 1], centers[3 * j + 2, l, 2]
+                    f0, f1, f2 = forces[3 * j + 2, l, 0], forces[3 * j + 2, l, 1], forces[3 * j + 2, l, 2]
+                    q0, q1, q2 = torques[3 * j + 2, l, 0], torques[3 * j + 2, l, 1], torques[3 * j + 2, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i]
+                    y0[i] += a0[i] * dt_six
+                    a1[i] += k1[i]
+                    y1[i] += a1[i] * dt_six
+                    a2[i] += k2[i]
+                    y2[i] += a2[i] * dt_six
+            for i in range(count):
+                out[start + i, 0] = y0[i]
+                out[start + i, 1] = y1[i]
+                out[start + i, 2] = y2[i]
+        return out
+
+    @numba.njit(**opts)
+    def loads_flow_3(points, centers, forces, torques, eps, w, beta, steps, out):
+        n = points.shape[0]
+        L = centers.shape[1]
+        dt = 1.0 / steps
+        dt_half = 0.5 * dt
+        dt_six = dt / 6.0
+        size = 256
+        for b in numba.prange((n + size - 1) // size):
+            start = b * size
+            count = min(n, start + size) - start
+            y0 = np.empty(size)
+            y1 = np.empty(size)
+            y2 = np.empty(size)
+            s0 = np.empty(size)
+            s1 = np.empty(size)
+            s2 = np.empty(size)
+            k0 = np.empty(size)
+            k1 = np.empty(size)
+            k2 = np.empty(size)
+            a0 = np.empty(size)
+            a1 = np.empty(size)
+            a2 = np.empty(size)
+            for i in range(count):
+                y0[i] = points[start + i, 0]
+                y1[i] = points[start + i, 1]
+                y2[i] = points[start + i, 2]
+            for j in range(steps):
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j, l, 0], centers[3 * j, l, 1], centers[3 * j, l, 2]
+                    f0, f1, f2 = forces[3 * j, l, 0], forces[3 * j, l, 1], forces[3 * j, l, 2]
+                    q0, q1, q2 = torques[3 * j, l, 0], torques[3 * j, l, 1], torques[3 * j, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    e_2 = eps[l, 2]
+                    w_2 = w[l, 2]
+                    for i in range(count):
+                        r0 = y0[i] - c0
+                        r1 = y1[i] - c1
+                        r2 = y2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        e = e_2
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_2 * pa
+                        tb += w_2 * pb
+                        tg += w_2 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] = k0[i]
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] = k1[i]
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] = k2[i]
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    e_2 = eps[l, 2]
+                    w_2 = w[l, 2]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        e = e_2
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_2 * pa
+                        tb += w_2 * pb
+                        tg += w_2 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i] * 2.0
+                    s0[i] = k0[i] * dt_half + y0[i]
+                    a1[i] += k1[i] * 2.0
+                    s1[i] = k1[i] * dt_half + y1[i]
+                    a2[i] += k2[i] * 2.0
+                    s2[i] = k2[i] * dt_half + y2[i]
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 1, l, 0], centers[3 * j + 1, l, 1], centers[3 * j + 1, l, 2]
+                    f0, f1, f2 = forces[3 * j + 1, l, 0], forces[3 * j + 1, l, 1], forces[3 * j + 1, l, 2]
+                    q0, q1, q2 = torques[3 * j + 1, l, 0], torques[3 * j + 1, l, 1], torques[3 * j + 1, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    e_2 = eps[l, 2]
+                    w_2 = w[l, 2]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        e = e_2
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_2 * pa
+                        tb += w_2 * pb
+                        tg += w_2 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    s0[i] = k0[i] * dt + y0[i]
+                    a0[i] += k0[i] * 2.0
+                    s1[i] = k1[i] * dt + y1[i]
+                    a1[i] += k1[i] * 2.0
+                    s2[i] = k2[i] * dt + y2[i]
+                    a2[i] += k2[i] * 2.0
+                for i in range(count):
+                    k0[i] = 0.0
+                    k1[i] = 0.0
+                    k2[i] = 0.0
+                for l in range(L):
+                    c0, c1, c2 = centers[3 * j + 2, l, 0], centers[3 * j + 2, l, 1], centers[3 * j + 2, l, 2]
+                    f0, f1, f2 = forces[3 * j + 2, l, 0], forces[3 * j + 2, l, 1], forces[3 * j + 2, l, 2]
+                    q0, q1, q2 = torques[3 * j + 2, l, 0], torques[3 * j + 2, l, 1], torques[3 * j + 2, l, 2]
+                    e_0 = eps[l, 0]
+                    w_0 = w[l, 0]
+                    e_1 = eps[l, 1]
+                    w_1 = w[l, 1]
+                    e_2 = eps[l, 2]
+                    w_2 = w[l, 2]
+                    for i in range(count):
+                        r0 = s0[i] - c0
+                        r1 = s1[i] - c1
+                        r2 = s2[i] - c2
+                        rr = r0 * r0 + r1 * r1 + r2 * r2
+                        ta = 0.0
+                        tb = 0.0
+                        tg = 0.0
+                        e = e_0
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_0 * pa
+                        tb += w_0 * pb
+                        tg += w_0 * pg
+                        e = e_1
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_1 * pa
+                        tb += w_1 * pb
+                        tg += w_1 * pg
+                        e = e_2
+                        t = 1.0 / math.sqrt(rr + e * e)
+                        g0 = e**2
+                        g1 = t**3
+                        pa = -beta*t + (1/2)*g0*g1 + t
+                        pb = beta*g1
+                        pg = -3/2*g0*t**5 - g1
+                        ta += w_2 * pa
+                        tb += w_2 * pb
+                        tg += w_2 * pg
+                        rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb
+                        k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)
+                        k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)
+                        k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)
+                for i in range(count):
+                    a0[i] += k0[i]
+                    y0[i] += a0[i] * dt_six
+                    a1[i] += k1[i]
+                    y1[i] += a1[i] * dt_six
+                    a2[i] += k2[i]
+                    y2[i] += a2[i] * dt_six
+            for i in range(count):
+                out[start + i, 0] = y0[i]
+                out[start + i, 1] = y1[i]
+                out[start + i, 2] = y2[i]
+        return out
+
     return {
         ('grab', 1): grab_flow_1,
         ('grab', 2): grab_flow_2,
@@ -3228,4 +3987,7 @@ def _numba_kernels():
         ('affine_pair', 1): affine_pair_flow_1,
         ('affine_pair', 2): affine_pair_flow_2,
         ('affine_pair', 3): affine_pair_flow_3,
+        ('loads', 1): loads_flow_1,
+        ('loads', 2): loads_flow_2,
+        ('loads', 3): loads_flow_3,
     }

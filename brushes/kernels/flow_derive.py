@@ -12,7 +12,11 @@ stage times, the same stage arithmetic and the same closed-form profiles as the 
 * affine (twist, scale, pinch): a fixed load F, velocity P F r + Q (F^T r + tr F r) + S (r . F r) r
   ([dGJ17] sec. 4; `brushes.brush._Affine.velocity`);
 * grab_pair, affine_pair: the sum of two such loads, the brush and its mirror image
-  (`brushes.mirror.Mirrored.velocity`, with the image's load given as its own centre and load).
+  (`brushes.mirror.Mirrored.velocity`, with the image's load given as its own centre and load);
+* loads: any number of point loads (forces and twist loads, the handles' field of
+  `brushes.handles.LoadSolver.field`) whose centres and loads are given afresh at every stage
+  time, each load with its own radii and weights: grabs, mirrored grabs and handles, with or
+  without pins (`brushes.brush.Brush.point_loads`).
 
 The profile expressions, their common-subexpression blocks and the per-radius unrolling are the
 ones of `brushes.kernels.derive` (imported, not copied), so the fused kernels evaluate the same
@@ -48,6 +52,10 @@ affine_flow(points, center, F, eps, w, beta, steps, out): velocity is the affine
     the fixed load F (3, 3).
 grab_pair_flow(points, center, move, center_b, move_b, ...), affine_pair_flow(points, center, F,
     center_b, F_b, ...): velocity is the sum of two loads (a brush and its mirror image).
+loads_flow(points, centers, forces, torques, eps, w, beta, steps, out): velocity at stage time
+    index s (3 j, 3 j + 1, 3 j + 2 for t = j/steps, (j + 1/2)/steps, (j + 1)/steps) is the sum
+    over loads l of the force forces[s, l] and twist load torques[s, l] at centers[s, l]
+    ((3 steps, L, 3) each), with radii eps[l] and weights w[l] ((L, K) each).
 points (n, 3) float64 C-contiguous; center, move (3,) float64; eps, w (K,) float64; beta float;
 steps int >= 1; out (n, 3) float64 C-contiguous (may not be `points`). Returns `out`.
 """
@@ -211,6 +219,85 @@ _NUMBA_BODY = """\
 """
 
 
+_LOADS_BODY = """\
+    @numba.njit(**opts)
+    def loads_flow_{K}(points, centers, forces, torques, eps, w, beta, steps, out):
+        n = points.shape[0]
+        L = centers.shape[1]
+        dt = 1.0 / steps
+        dt_half = 0.5 * dt
+        dt_six = dt / 6.0
+        size = {BLOCK}
+        for b in numba.prange((n + size - 1) // size):
+            start = b * size
+            count = min(n, start + size) - start
+            y0 = np.empty(size)
+            y1 = np.empty(size)
+            y2 = np.empty(size)
+            s0 = np.empty(size)
+            s1 = np.empty(size)
+            s2 = np.empty(size)
+            k0 = np.empty(size)
+            k1 = np.empty(size)
+            k2 = np.empty(size)
+            a0 = np.empty(size)
+            a1 = np.empty(size)
+            a2 = np.empty(size)
+            for i in range(count):
+                y0[i] = points[start + i, 0]
+                y1[i] = points[start + i, 1]
+                y2[i] = points[start + i, 2]
+            for j in range(steps):
+{stages}
+            for i in range(count):
+                out[start + i, 0] = y0[i]
+                out[start + i, 1] = y1[i]
+                out[start + i, 2] = y2[i]
+        return out
+"""
+
+
+def _loads_velocity(src, stage, cse, K, indent):
+    """Lines summing every load's field at stage `stage` at the block's points `src` into k0..k2."""
+    pad = " " * indent
+    inner = " " * (indent + 8)
+    return "\n".join([
+        f"{pad}for i in range(count):\n{pad}    k0[i] = 0.0\n{pad}    k1[i] = 0.0\n{pad}    k2[i] = 0.0",
+        f"{pad}for l in range(L):",
+        f"{pad}    c0, c1, c2 = centers[{stage}, l, 0], centers[{stage}, l, 1], centers[{stage}, l, 2]",
+        f"{pad}    f0, f1, f2 = forces[{stage}, l, 0], forces[{stage}, l, 1], forces[{stage}, l, 2]",
+        f"{pad}    q0, q1, q2 = torques[{stage}, l, 0], torques[{stage}, l, 1], torques[{stage}, l, 2]",
+        "\n".join(f"{pad}    e_{k} = eps[l, {k}]\n{pad}    w_{k} = w[l, {k}]" for k in range(K)),
+        f"{pad}    for i in range(count):",
+        f"{inner}r0 = {src[0]}[i] - c0",
+        f"{inner}r1 = {src[1]}[i] - c1",
+        f"{inner}r2 = {src[2]}[i] - c2",
+        f"{inner}rr = r0 * r0 + r1 * r1 + r2 * r2",
+        derive._radii_block(K, cse, ["pa", "pb", "pg"], ["ta", "tb", "tg"], indent + 8),
+        f"{inner}rm = (r0 * f0 + r1 * f1 + r2 * f2) * tb",
+        f"{inner}k0[i] += ta * f0 + rm * r0 + tg * (q1 * r2 - q2 * r1)",
+        f"{inner}k1[i] += ta * f1 + rm * r1 + tg * (q2 * r0 - q0 * r2)",
+        f"{inner}k2[i] += ta * f2 + rm * r2 + tg * (q0 * r1 - q1 * r0)"])
+
+
+def _loads_steps(cse, K, indent):
+    """One RK4 step over the block, in `brushes.flow`'s order, with the loads of stage times
+    3 j (t), 3 j + 1 (t + dt/2, for k2 and k3) and 3 j + 2 (t + dt)."""
+    pad = " " * indent
+    loop = f"{pad}for i in range(count):\n"
+    y, s_ = ("y0", "y1", "y2"), ("s0", "s1", "s2")
+    return "\n".join([
+        _loads_velocity(y, "3 * j", cse, K, indent),
+        loop + "\n".join(f"{pad}    a{c}[i] = k{c}[i]\n{pad}    s{c}[i] = k{c}[i] * dt_half + y{c}[i]" for c in range(3)),
+        _loads_velocity(s_, "3 * j + 1", cse, K, indent),
+        loop + "\n".join(f"{pad}    a{c}[i] += k{c}[i] * 2.0\n{pad}    s{c}[i] = k{c}[i] * dt_half + y{c}[i]"
+                          for c in range(3)),
+        _loads_velocity(s_, "3 * j + 1", cse, K, indent),
+        loop + "\n".join(f"{pad}    s{c}[i] = k{c}[i] * dt + y{c}[i]\n{pad}    a{c}[i] += k{c}[i] * 2.0" for c in range(3)),
+        _loads_velocity(s_, "3 * j + 2", cse, K, indent),
+        loop + "\n".join(f"{pad}    a{c}[i] += k{c}[i]\n{pad}    y{c}[i] += a{c}[i] * dt_six" for c in range(3))])
+
+
 def _numba_block():
     grab_u, _, aff_u, _ = derive._profile_exprs()
     cse = {"grab": derive._cse_block(grab_u, ["pa", "pb"], 20, "g"),
@@ -230,6 +317,11 @@ def _numba_block():
                     .replace("{step}", _rk4_body(stages[kind], cse[kind], K, 20)))
             funcs.append(text)
             names.append(f"        ({kind!r}, {K}): {kind}_flow_{K},")
+    handle_u = derive._cse_block(derive._handle_exprs()[0], ["pa", "pb", "pg"], 24, "g")
+    for K in counts:
+        funcs.append(_LOADS_BODY.replace("{K}", str(K)).replace("{BLOCK}", str(FLOW_BLOCK))
+                     .replace("{stages}", _loads_steps(handle_u, K, 16)))
+        names.append(f"        ('loads', {K}): loads_flow_{K},")
     return ("\n\ndef _numba_kernels():\n"
             '    """Compile the numba kernels: one parallel pass over the points, radii unrolled."""\n'
             "    import numba\n\n"
@@ -348,6 +440,47 @@ def affine_pair_flow(points, center, F, center_b, F_b, eps, w, beta, steps, out=
         return _np_flow(_np_pair(_np_affine_velocity), points, (center, center_b), (F, F_b), eps, w,
                         float(beta), steps, out)
     return fn(points, center, F, center_b, F_b, eps, w, float(beta), steps, out)
+
+
+def _np_loads_velocity(x, stage, centers, loads, eps, w, beta, out):
+    from brushes.kernels import _generated
+    forces, torques = loads
+    out[...] = 0.0
+    part = np.empty_like(out)
+    for l in range(centers.shape[1]):
+        _generated.np_handles_displacement(x, centers[stage, l][None], forces[stage, l][None],
+                                           torques[stage, l][None], eps[l][None], w[l], beta, part)
+        out += part
+    return out
+
+
+def loads_flow(points, centers, forces, torques, eps, w, beta, steps, out=None):
+    """`steps` RK4 steps of a sum of point loads given at every stage time: (n, 3) float64
+    positions at t = 1. centers, forces, torques (3 steps, L, 3); eps, w (L, K)."""
+    out, steps = _checked(points, out, steps)
+    centers, forces, torques = (np.ascontiguousarray(a, dtype=np.float64) for a in (centers, forces, torques))
+    eps, w = np.ascontiguousarray(eps, dtype=np.float64), np.ascontiguousarray(w, dtype=np.float64)
+    L = centers.shape[1] if centers.ndim == 3 else -1
+    for name, a, shape in (("centers", centers, (3 * steps, L, 3)), ("forces", forces, (3 * steps, L, 3)),
+                           ("torques", torques, (3 * steps, L, 3)), ("w", w, eps.shape)):
+        if a.shape != shape or L < 1:
+            raise ValueError(f"{name}: must have shape {(3 * steps, 'L', 3) if name != 'w' else eps.shape}, "
+                             f"got {a.shape}")
+    if eps.ndim != 2 or eps.shape[0] != L:
+        raise ValueError(f"eps: must have shape ({L}, K), got {eps.shape}")
+    fn = _kernel("loads", eps.shape[1])
+    if fn is None:
+        stages = [0]
+
+        def velocity(x, tau, centers_, loads, eps_, w_, beta_, k):
+            # _np_flow evaluates the stages in order t, t + h/2, t + h/2, t + h: index 3j, 3j+1, 3j+1, 3j+2
+            i = stages[0]
+            stages[0] += 1
+            j, r = divmod(i, 4)
+            return _np_loads_velocity(x, 3 * j + (0, 1, 1, 2)[r], centers_, loads, eps_, w_, beta_, k)
+
+        return _np_flow(velocity, points, centers, (forces, torques), eps, w, float(beta), steps, out)
+    return fn(points, centers, forces, torques, eps, w, float(beta), steps, out)
 '''
 
 
