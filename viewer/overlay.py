@@ -40,14 +40,14 @@ def status_lines(status):
         f"   flipped faces {status.get('flipped', 0):,}"
         f"   pins {status.get('pins', 0)}   strokes {status.get('strokes', 0)}"
         f" (+{status.get('redo', 0)} to redo)"
-        + (f"   draw {frame:.1f} ms" if frame is not None else ""),
+        + (f"   frame {frame:.1f} ms" if frame is not None else ""),
     ]
     budget = status.get("budget") or {}
     if budget:
         parts = [f"{name} {budget[name]:.1f}" for name in ("brush", "normals", "upload", "draw")
                  if budget.get(name) is not None]
         moved = budget.get("moved")
-        lines.append("frame ms: " + "   ".join(parts)
+        lines.append("budget ms: " + "   ".join(parts)
                      + (f"   (normals redone for {100 * moved:.0f}% of vertices)" if moved is not None else ""))
     if status.get("message"):
         lines.append(status["message"])
