@@ -126,3 +126,20 @@ def test_affine_profiles_are_the_kelvinlet_gradient():
     got = a * (P(s, eps, beta) * F @ r + Q(s, eps, beta) * (F.T @ r + np.trace(F) * r)
                + S(s, eps, beta) * (r @ F @ r) * r)
     np.testing.assert_allclose(got, ref, rtol=1e-7)
+
+
+def test_publish_writes_whole_files_and_compares_them(tmp_path, capsys):
+    # The one write/compare step of every generator (derive, dynamic_derive, flow_derive).
+    import time
+    from brushes.kernels import derive
+    path = str(tmp_path / "_made.py")
+    t0 = time.perf_counter()
+    assert not derive.publish(path, "x = 1\n", write=False, proved=True, program="t", t0=t0)  # no file yet
+    assert not derive.publish(path, "x = 1\n", write=True, proved=False, program="t", t0=t0)
+    assert not (tmp_path / "_made.py").exists() and "a proof failed" in capsys.readouterr().err
+    assert derive.publish(path, "x = 1\n", write=True, proved=True, program="t", t0=t0)
+    assert (tmp_path / "_made.py").read_text() == "x = 1\n" and not (tmp_path / "_made.py.tmp").exists()
+    assert derive.publish(path, "x = 1\n", write=False, proved=True, program="t", t0=t0)
+    assert not derive.publish(path, "x = 2\n", write=False, proved=True, program="t", t0=t0)
+    assert not derive.publish(path, "x = 1\n", write=False, proved=False, program="t", t0=t0)
+    assert "DIFFERS FROM _made.py" in capsys.readouterr().out

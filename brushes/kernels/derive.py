@@ -1066,6 +1066,36 @@ def run_proofs(verbose=True):
     return ok
 
 
+def publish(path, text, *, write, proved, program, t0, verbose=True):
+    """Write a generator's `text` to `path` (write=True, only when every proof held; through a
+    temporary file, so a stopped run leaves the old file whole) or compare it with the file there.
+
+    Prints one line (`verbose`), with the seconds since `t0`. Returns True on success: written,
+    or proved and the same as the committed file. Every generator ends with this.
+    """
+    name = os.path.basename(path)
+    if write:
+        if not proved:
+            print(f"{program}: a proof failed; {name} not written", file=sys.stderr)
+            return False
+        tmp = path + ".tmp"
+        with open(tmp, "w", encoding="utf-8") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+        if verbose:
+            print(f"wrote {name} ({time.perf_counter() - t0:.1f} s)")
+        return True
+    try:
+        with open(path, encoding="utf-8") as fh:
+            current = fh.read()
+    except OSError:
+        current = None
+    same = current == text
+    if verbose:
+        print(f"generated code {'matches' if same else 'DIFFERS FROM'} {name} ({time.perf_counter() - t0:.1f} s)")
+    return proved and same
+
+
 def kernels_path():
     return os.path.join(os.path.dirname(os.path.abspath(__file__)), "_generated.py")
 
@@ -1080,26 +1110,7 @@ def main(argv=None):
     t0 = time.perf_counter()
     print("proofs:")
     ok = run_proofs()
-    text = generate()
-    path = kernels_path()
-    if args.write:
-        if not ok:
-            print("derive: a proof failed; _generated.py not written", file=sys.stderr)
-            return 1
-        tmp = path + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-        print(f"wrote {os.path.basename(path)} ({time.perf_counter() - t0:.1f} s)")
-        return 0
-    try:
-        with open(path, encoding="utf-8") as fh:
-            current = fh.read()
-    except OSError:
-        current = None
-    same = current == text
-    print(f"generated code {'matches' if same else 'DIFFERS FROM'} _generated.py ({time.perf_counter() - t0:.1f} s)")
-    return 0 if (ok and same) else 1
+    return 0 if publish(kernels_path(), generate(), write=args.write, proved=ok, program="derive", t0=t0) else 1
 
 
 if __name__ == "__main__":

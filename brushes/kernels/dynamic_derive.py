@@ -1134,29 +1134,8 @@ def check_or_write(*, write, verbose=True):
     if verbose:
         print("dynamic proofs:")
     ok = run_proofs(verbose)
-    text = generate()
-    path = generated_path()
-    if write:
-        if not ok:
-            print("dynamic_derive: a proof failed; _dynamic_generated.py not written", file=sys.stderr)
-            return False
-        tmp = path + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-        if verbose:
-            print(f"wrote {os.path.basename(path)} ({time.perf_counter() - t0:.1f} s)")
-        return True
-    try:
-        with open(path, encoding="utf-8") as fh:
-            current = fh.read()
-    except OSError:
-        current = None
-    same = current == text
-    if verbose:
-        print(f"generated code {'matches' if same else 'DIFFERS FROM'} _dynamic_generated.py "
-              f"({time.perf_counter() - t0:.1f} s)")
-    return ok and same
+    return derive.publish(generated_path(), generate(), write=write, proved=ok, program="dynamic_derive",
+                          t0=t0, verbose=verbose)
 
 
 def main(argv=None):

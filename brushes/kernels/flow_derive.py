@@ -501,24 +501,8 @@ def main(argv=None):
     group.add_argument("--write", action="store_true", help="write _flow_generated.py")
     args = parser.parse_args(argv)
     t0 = time.perf_counter()
-    text = generate()
-    path = flow_kernels_path()
-    if args.write:
-        tmp = path + ".tmp"
-        with open(tmp, "w", encoding="utf-8") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-        print(f"wrote {os.path.basename(path)} ({time.perf_counter() - t0:.1f} s)")
-        return 0
-    try:
-        with open(path, encoding="utf-8") as fh:
-            current = fh.read()
-    except OSError:
-        current = None
-    same = current == text
-    print(f"generated code {'matches' if same else 'DIFFERS FROM'} _flow_generated.py "
-          f"({time.perf_counter() - t0:.1f} s)")
-    return 0 if same else 1
+    return 0 if derive.publish(flow_kernels_path(), generate(), write=args.write, proved=True,
+                               program="flow_derive", t0=t0) else 1
 
 
 if __name__ == "__main__":
