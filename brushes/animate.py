@@ -27,18 +27,16 @@ works on copies of them: up to `PEAK_BYTES` per vertex per frame at its peak.
 """
 from __future__ import annotations
 
-import base64
 import io
-import json
 import math
 import os
-import struct
 from dataclasses import dataclass
 
 import numpy as np
 
 from brushes import checks
 from brushes.atomic import atomic_write
+from brushes.formats import gltf as gltf_format
 
 #: Vertex-frames (frames x vertices) from which the command shows a progress bar.
 LONG_ANIMATION = 1_000_000
@@ -311,27 +309,8 @@ def gltf_bytes(rest, faces, uv, times, compressed, *, glb=True, name="animation"
     Written here rather than through `brushes.correctives`, which stores one morph target and no
     animation.
     """
-    blobs, views, accessors = [], [], []
-    offset = 0
-
-    def add(arr, kind, ctype, *, target=None, bounds=False):
-        nonlocal offset
-        arr = np.ascontiguousarray(arr)
-        raw = arr.tobytes()
-        view = {"buffer": 0, "byteOffset": offset, "byteLength": len(raw)}
-        if target is not None:
-            view["target"] = target
-        views.append(view)
-        acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)), "type": kind}
-        if bounds:   # exact float32 bounds: required for POSITION and animation inputs
-            flat = arr.reshape(len(arr), -1)
-            acc["min"] = [float(v) for v in flat.min(axis=0)]
-            acc["max"] = [float(v) for v in flat.max(axis=0)]
-        accessors.append(acc)
-        raw += b"\0" * (-len(raw) % 4)
-        blobs.append(raw)
-        offset += len(raw)
-        return len(accessors) - 1
+    buf = gltf_format.BufferBuilder()
+    add = buf.add
 
     rest = np.asarray(rest, dtype=np.float64)
     attributes = {"POSITION": add(rest.astype(np.float32), "VEC3", _FLOAT, target=_ARRAY_BUFFER, bounds=True)}
@@ -353,7 +332,7 @@ def gltf_bytes(rest, faces, uv, times, compressed, *, glb=True, name="animation"
     time_acc = add(np.asarray(times, dtype=np.float32), "SCALAR", _FLOAT, bounds=True)
     weight_acc = add(np.ascontiguousarray(compressed.weights, dtype=np.float32).ravel(), "SCALAR", _FLOAT)
     k = len(targets)
-    binary = b"".join(blobs)
+    binary = buf.binary()
     gltf = {
         "asset": {"version": "2.0", "generator": "pliant animate"},
         "scene": 0,
@@ -364,18 +343,11 @@ def gltf_bytes(rest, faces, uv, times, compressed, *, glb=True, name="animation"
         "animations": [{"name": name, "samplers": [{"input": time_acc, "output": weight_acc,
                                                     "interpolation": "LINEAR"}],
                         "channels": [{"sampler": 0, "target": {"node": 0, "path": "weights"}}]}],
-        "accessors": accessors,
-        "bufferViews": views,
+        "accessors": buf.accessors,
+        "bufferViews": buf.views,
         "buffers": [{"byteLength": len(binary)}],
     }
-    if not glb:
-        gltf["buffers"][0]["uri"] = "data:application/octet-stream;base64," + base64.b64encode(binary).decode("ascii")
-        return (json.dumps(gltf, indent=1) + "\n").encode("utf-8")
-    jbytes = json.dumps(gltf, separators=(",", ":")).encode("utf-8")
-    jbytes += b" " * (-len(jbytes) % 4)
-    chunks = (struct.pack("<II", len(jbytes), 0x4E4F534A) + jbytes
-              + struct.pack("<II", len(binary), 0x004E4942) + binary)
-    return struct.pack("<III", 0x46546C67, 2, 12 + len(chunks)) + chunks
+    return gltf_format.container(gltf, binary, glb=glb)
 
 
 def write_animation(path, rest, faces, uv, times, compressed):

@@ -34,18 +34,16 @@ Two outputs, chosen by the file extension given to :func:`write_delta`:
 
 from __future__ import annotations
 
-import base64
 import hashlib
 import io
-import json
 import os
-import struct
 
 import numpy as np
 
 from . import checks
 from .atomic import atomic_write
 from .formats import MeshDoc
+from .formats import gltf as gltf_format
 
 __all__ = ["write_delta", "apply_delta", "rest_checksum", "FORMAT_TAG", "FORMAT_VERSION"]
 
@@ -181,33 +179,14 @@ _UINT32 = 5125
 def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
     """glTF 2.0 JSON (+ GLB container) for one mesh with one morph target."""
     pos = rest.astype(np.float32)
-    blobs, views, accessors = [], [], []
-    offset = 0
+    buf = gltf_format.BufferBuilder()
 
-    def add(arr, target, kind, ctype, bounds):
-        nonlocal offset
-        raw = np.ascontiguousarray(arr).tobytes()
-        view = {"buffer": 0, "byteOffset": offset, "byteLength": len(raw)}
-        if target is not None:
-            view["target"] = target
-        views.append(view)
-        acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)),
-               "type": kind}
-        if bounds:  # exact float32 bounds, as the glTF 2.0 spec requires for POSITION
-            acc["min"] = [float(x) for x in arr.min(axis=0)]
-            acc["max"] = [float(x) for x in arr.max(axis=0)]
-        accessors.append(acc)
-        raw += b"\0" * (-len(raw) % 4)
-        blobs.append(raw)
-        offset += len(raw)
-        return len(accessors) - 1
-
-    attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", _FLOAT, True)}
+    attributes = {"POSITION": buf.add(pos, "VEC3", _FLOAT, target=_ARRAY_BUFFER, bounds=True)}
     if uv is not None:
         uv = np.asarray(uv, np.float64)
         uv = np.stack([uv[:, 0], 1.0 - uv[:, 1]], axis=1)  # glTF's texture origin is top left
-        attributes["TEXCOORD_0"] = add(uv.astype(np.float32), _ARRAY_BUFFER, "VEC2", _FLOAT, False)
-    target = {"POSITION": _target_accessor(deltas, add, accessors, views, blobs)}
+        attributes["TEXCOORD_0"] = buf.add(uv.astype(np.float32), "VEC2", _FLOAT, target=_ARRAY_BUFFER)
+    target = {"POSITION": _target_accessor(deltas, buf)}
     primitive = {"attributes": attributes, "targets": [target]}
     faces = np.asarray(faces, np.int64).reshape(-1, 3)
     if len(faces):
@@ -217,11 +196,11 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
         else:
             idx = faces.astype(np.uint32).ravel()
             ctype = _UINT32
-        primitive["indices"] = add(idx, _ELEMENT_ARRAY_BUFFER, "SCALAR", ctype, False)
+        primitive["indices"] = buf.add(idx, "SCALAR", ctype, target=_ELEMENT_ARRAY_BUFFER)
         primitive["mode"] = 4
     else:
         primitive["mode"] = 0  # points
-    binary = b"".join(blobs)
+    binary = buf.binary()
     gltf = {
         "asset": {"version": "2.0", "generator": "pliant corrective shape"},
         "scene": 0,
@@ -229,22 +208,14 @@ def _gltf_bytes(rest, faces, uv, deltas, name, weight, *, glb):
         "nodes": [{"name": name, "mesh": 0}],
         "meshes": [{"name": name, "primitives": [primitive], "weights": [weight],
                     "extras": {"targetNames": [name]}}],
-        "accessors": accessors,
-        "bufferViews": views,
+        "accessors": buf.accessors,
+        "bufferViews": buf.views,
         "buffers": [{"byteLength": len(binary)}],
     }
-    if not glb:
-        gltf["buffers"][0]["uri"] = ("data:application/octet-stream;base64,"
-                                     + base64.b64encode(binary).decode("ascii"))
-        return (json.dumps(gltf, indent=1) + "\n").encode("utf-8")
-    jbytes = json.dumps(gltf, separators=(",", ":")).encode("utf-8")
-    jbytes += b" " * (-len(jbytes) % 4)
-    chunks = (struct.pack("<II", len(jbytes), 0x4E4F534A) + jbytes
-              + struct.pack("<II", len(binary), 0x004E4942) + binary)
-    return struct.pack("<III", 0x46546C67, 2, 12 + len(chunks)) + chunks
+    return gltf_format.container(gltf, binary, glb=glb)
 
 
-def _target_accessor(deltas, add, accessors, views, blobs):
+def _target_accessor(deltas, buf):
     """The morph target's POSITION accessor: dense, sparse (moved vertices only) when that is
     smaller, or no data at all (zeros) when nothing moved. Returns its index."""
     n = len(deltas)
@@ -252,16 +223,17 @@ def _target_accessor(deltas, add, accessors, views, blobs):
     k = len(moved)
     index_size = 2 if n <= 65535 else 4
     if k == 0:
-        accessors.append({"componentType": _FLOAT, "count": n, "type": "VEC3",
-                          "min": [0.0, 0.0, 0.0], "max": [0.0, 0.0, 0.0]})
-        return len(accessors) - 1
+        buf.accessors.append({"componentType": _FLOAT, "count": n, "type": "VEC3",
+                              "min": [0.0, 0.0, 0.0], "max": [0.0, 0.0, 0.0]})
+        return len(buf.accessors) - 1
     if k * (index_size + 12) >= n * 12:
-        return add(deltas, _ARRAY_BUFFER, "VEC3", _FLOAT, True)
+        return buf.add(deltas, "VEC3", _FLOAT, target=_ARRAY_BUFFER, bounds=True)
     values = deltas[moved]
     idx = moved.astype(np.uint16 if index_size == 2 else np.uint32)
-    i_acc = add(idx, None, "SCALAR", _UINT16 if index_size == 2 else _UINT32, False)
-    v_acc = add(values, None, "VEC3", _FLOAT, False)
+    i_acc = buf.add(idx, "SCALAR", _UINT16 if index_size == 2 else _UINT32)
+    v_acc = buf.add(values, "VEC3", _FLOAT)
     # the two helper accessors become the sparse parts of one accessor (their views stay)
+    accessors = buf.accessors
     i_view, v_view = accessors[i_acc]["bufferView"], accessors[v_acc]["bufferView"]
     del accessors[v_acc], accessors[i_acc]
     lo = np.minimum(values.min(axis=0), 0.0) if k < n else values.min(axis=0)

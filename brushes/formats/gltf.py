@@ -481,26 +481,7 @@ def export(vertices, polys: Polygons, *, glb=True, source_vertex=None, name="mes
     tri_owner = owner[tri_poly]
     mat = (polys.material_index[tri_poly] if polys.material_index is not None
            else np.full(len(tris), -1, np.int64))
-    blobs, views, accessors = [], [], []
-    offset = 0
-
-    def add(arr, target, kind, ctype, bounds=False):
-        nonlocal offset
-        raw = np.ascontiguousarray(arr).tobytes()
-        view = {"buffer": 0, "byteOffset": offset, "byteLength": len(raw)}
-        if target is not None:
-            view["target"] = target
-        views.append(view)
-        acc = {"bufferView": len(views) - 1, "componentType": ctype, "count": int(len(arr)),
-               "type": kind}
-        if bounds:
-            acc["min"] = [float(x) for x in arr.min(axis=0)]
-            acc["max"] = [float(x) for x in arr.max(axis=0)]
-        accessors.append(acc)
-        raw += b"\0" * (-len(raw) % 4)
-        blobs.append(raw)
-        offset += len(raw)
-        return len(accessors) - 1
+    buf = BufferBuilder()
 
     nodes, meshes = [], []
     order = [i for i in range(len(names)) if np.any(tri_owner == i)]
@@ -512,25 +493,25 @@ def export(vertices, polys: Polygons, *, glb=True, source_vertex=None, name="mes
         local = local.reshape(-1, 3)
         pos = vertices[used].astype(np.float32)
         written += len(used)
-        attributes = {"POSITION": add(pos, _ARRAY_BUFFER, "VEC3", 5126, True)}
+        attributes = {"POSITION": buf.add(pos, "VEC3", 5126, target=_ARRAY_BUFFER, bounds=True)}
         if polys.normals is not None:
             n = np.asarray(polys.normals, np.float64)[used]
             length = np.linalg.norm(n, axis=1, keepdims=True)
             n = np.divide(n, length, out=np.tile([0.0, 0.0, 1.0], (len(n), 1)), where=length > 0)
-            attributes["NORMAL"] = add(n.astype(np.float32), _ARRAY_BUFFER, "VEC3", 5126)
+            attributes["NORMAL"] = buf.add(n.astype(np.float32), "VEC3", 5126, target=_ARRAY_BUFFER)
         if polys.uv is not None:
             uv = np.asarray(polys.uv, np.float64)[used]
             uv = np.stack([uv[:, 0], 1.0 - uv[:, 1]], axis=1)  # to glTF's top-left origin
-            attributes["TEXCOORD_0"] = add(uv.astype(np.float32), _ARRAY_BUFFER, "VEC2", 5126)
+            attributes["TEXCOORD_0"] = buf.add(uv.astype(np.float32), "VEC2", 5126, target=_ARRAY_BUFFER)
         if source_vertex is not None:
-            attributes[SOURCE_ATTRIBUTE] = add(np.asarray(source_vertex, np.float32)[used],
-                                               _ARRAY_BUFFER, "SCALAR", 5126)
+            attributes[SOURCE_ATTRIBUTE] = buf.add(np.asarray(source_vertex, np.float32)[used], "SCALAR", 5126,
+                                                   target=_ARRAY_BUFFER)
         primitives = []
         for m in sorted(set(mat[sel].tolist())):
             idx = local[mat[sel] == m].reshape(-1)
             ctype, dt = (5123, np.uint16) if len(used) <= 65535 else (5125, np.uint32)
             prim = {"attributes": dict(attributes),
-                    "indices": add(idx.astype(dt), _ELEMENT_ARRAY_BUFFER, "SCALAR", ctype),
+                    "indices": buf.add(idx.astype(dt), "SCALAR", ctype, target=_ELEMENT_ARRAY_BUFFER),
                     "mode": 4}
             if m >= 0:
                 prim["material"] = int(m)
@@ -538,18 +519,53 @@ def export(vertices, polys: Polygons, *, glb=True, source_vertex=None, name="mes
         label = names[part] if part >= 0 else name
         meshes.append({"name": label, "primitives": primitives})
         nodes.append({"name": label, "mesh": len(meshes) - 1})
-    binary = b"".join(blobs)
+    binary = buf.binary()
     gltf = {"asset": {"version": "2.0", "generator": "pliant"}, "scene": 0,
             "scenes": [{"nodes": list(range(len(nodes)))}], "nodes": nodes, "meshes": meshes,
-            "accessors": accessors, "bufferViews": views,
+            "accessors": buf.accessors, "bufferViews": buf.views,
             "buffers": [{"byteLength": len(binary)}]}
     if polys.materials:
         gltf["materials"] = [{"name": m} for m in polys.materials]
-    return _container(gltf, binary, glb=glb), written
+    return container(gltf, binary, glb=glb), written
 
 
-def _container(gltf, binary, *, glb):
-    """GLB bytes, or glTF JSON with the buffer as a base64 data URI."""
+class BufferBuilder:
+    """One glTF binary buffer (buffer 0) built from arrays, for the writers of this package,
+    `brushes.correctives` and `brushes.animate`.
+
+    `add(arr, kind, ctype, *, target=None, bounds=False)` appends the array's bytes as a buffer
+    view (4-byte aligned, as glTF 2.0 requires) and an accessor, and returns the accessor's
+    index; ``bounds`` records the exact min and max per component (required for POSITION and
+    animation inputs). `views` and `accessors` are the JSON lists; `binary()` the buffer.
+    """
+
+    def __init__(self):
+        self.views, self.accessors, self._blobs, self._offset = [], [], [], 0
+
+    def add(self, arr, kind, ctype, *, target=None, bounds=False):
+        arr = np.ascontiguousarray(arr)
+        raw = arr.tobytes()
+        view = {"buffer": 0, "byteOffset": self._offset, "byteLength": len(raw)}
+        if target is not None:
+            view["target"] = target
+        self.views.append(view)
+        acc = {"bufferView": len(self.views) - 1, "componentType": ctype, "count": int(len(arr)), "type": kind}
+        if bounds:
+            flat = arr.reshape(len(arr), -1)
+            acc["min"] = [float(v) for v in flat.min(axis=0)]
+            acc["max"] = [float(v) for v in flat.max(axis=0)]
+        self.accessors.append(acc)
+        raw += b"\0" * (-len(raw) % 4)
+        self._blobs.append(raw)
+        self._offset += len(raw)
+        return len(self.accessors) - 1
+
+    def binary(self):
+        return b"".join(self._blobs)
+
+
+def container(gltf, binary, *, glb):
+    """GLB bytes, or glTF JSON with the buffer as a base64 data URI (``gltf["buffers"][0]``)."""
     if not glb:
         gltf["buffers"][0]["uri"] = ("data:application/octet-stream;base64,"
                                      + base64.b64encode(binary).decode("ascii"))
