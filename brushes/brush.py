@@ -8,7 +8,7 @@ forward to `brushes.kernels`. Integration as a flow lives in `brushes.flow`, whi
 module and registers itself as the integrator behind `Brush.apply`; this module never imports it.
 What the flow needs from a brush is public here: `velocity`, `velocity_lipschitz`,
 `velocity_lipschitz_at`, `exact_flow`, `fused_flow`, `fused_mirror_flow`, `point_loads`,
-`pin_clearance` and `pinned`.
+`pin_clearance` and `pinned`; what the elastodynamic response needs is `kernel_load`.
 """
 from __future__ import annotations
 
@@ -50,6 +50,21 @@ class PointLoads(NamedTuple):
     centers: np.ndarray
     forces: np.ndarray
     torques: np.ndarray
+    eps: np.ndarray
+    weights: np.ndarray
+    beta: float
+
+
+class KernelLoad(NamedTuple):
+    """The one regularized load a built-in brush's displacement is made of (`Brush.kernel_load`):
+    ``kind`` "grab" (``load`` (3,), the move, with ``weights`` carrying the centre normalization)
+    or "affine" (``load`` (3, 3), the matrix F of [dGJ17] sec. 4), at ``center`` (3,), with radii
+    ``eps`` (K,), weights (K,) and beta = 1 / (4 (1 - poisson)).
+    """
+
+    kind: str
+    center: np.ndarray
+    load: np.ndarray
     eps: np.ndarray
     weights: np.ndarray
     beta: float
@@ -131,6 +146,11 @@ class Brush:
         (the default: the mirrored brush takes the flow's own RK4 loop). A subclass that changes
         the field must override this too.
         """
+        return None
+
+    def kernel_load(self):
+        """The displacement's one regularized load as a `KernelLoad`, or None (the default:
+        a brush that is not one Kelvinlet load, or a subclass whose field may differ)."""
         return None
 
     def point_loads(self, t):
@@ -256,6 +276,11 @@ class Grab(_Kelvinlet):
         pts = np.ascontiguousarray(points, dtype=np.float64)
         return flow_kernels.grab_flow(pts, self.center, self.move, self._eps, self._wn, self._beta, steps)
 
+    def kernel_load(self):
+        if type(self) is not Grab:
+            return None
+        return KernelLoad("grab", self.center, self.move, self._eps, self._wn, float(self._beta))
+
     def point_loads(self, t):
         """One force, the move, at the centre carried to center + t * move (None for a subclass)."""
         if type(self) is not Grab:
@@ -333,6 +358,11 @@ class _Affine(_Kelvinlet):
         load = self._load_for(self.flow_gradient())
         pts = np.ascontiguousarray(points, dtype=np.float64)
         return flow_kernels.affine_flow(pts, self.center, load, self._eps, self._w, self._beta, steps)
+
+    def kernel_load(self):
+        if type(self) not in (Twist, Scale, Pinch):
+            return None
+        return KernelLoad("affine", self.center, self._load, self._eps, self._w, float(self._beta))
 
     def fused_mirror_flow(self, points, *, steps, H, shift):
         """The brush and its image (centre H c + shift, load H F H) in one fused pass: the affine

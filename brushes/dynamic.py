@@ -33,7 +33,7 @@ import math
 import numpy as np
 
 from brushes import checks, kernels
-from brushes.brush import Brush, Grab, Pinch, Scale, Twist
+from brushes.brush import Brush, Grab, Twist
 from brushes.handles import Handles
 from brushes.mirror import Mirrored
 
@@ -99,11 +99,9 @@ class _Source:
 def _sources(brush, pins):
     if isinstance(brush, Mirrored):
         inner = _sources(brush.brush, None)
-        out = inner + [s.mirrored(brush.H, brush._shift) for s in inner]
-    elif type(brush) is Grab:
-        out = [_Source("grab", brush.center, brush.move, brush._eps, brush._wn, brush._beta)]
-    elif type(brush) in (Twist, Scale, Pinch):   # the affine loads ([dGJ17] sec. 4)
-        out = [_Source("affine", brush.center, brush._load, brush._eps, brush._w, brush._beta)]
+        out = inner + [s.mirrored(brush.H, brush.shift) for s in inner]
+    elif (load := brush.kernel_load()) is not None:  # grab, or the affine loads ([dGJ17] sec. 4)
+        out = [_Source(load.kind, load.center, load.load, load.eps, load.weights, load.beta)]
     elif type(brush) is Handles:
         return _handle_sources(brush, pins)
     else:

@@ -31,6 +31,11 @@ class Mirrored(Brush):
             if hasattr(brush, name):
                 setattr(self, name, getattr(brush, name))
 
+    @property
+    def shift(self):
+        """(3,) float64, 2 (point . n) n: the reflection is x -> H x + shift."""
+        return self._shift
+
     def reflect(self, points):
         """R(x) = H x + 2 (point . n) n for points (n, 3): their mirror images."""
         return kernels.affine_map(points, self.H, self._shift)

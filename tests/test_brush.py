@@ -399,3 +399,26 @@ def test_bad_out_and_tol(kind):
     for tol in (0, -1.0, float("nan"), float("inf")):
         with pytest.raises(ValueError, match=starts("tol")):
             b.reach(tol)
+
+
+def test_kernel_load_rebuilds_the_displacement():
+    # `Brush.kernel_load` names the one regularized load of each built-in brush (what the
+    # elastodynamic response is built from): fed back to the kernels it gives the displacement.
+    from brushes import kernels
+    rng = np.random.default_rng(31)
+    x = rng.normal(scale=0.5, size=(300, 3))
+    made = [brushes.Grab([0.1, 0.0, -0.2], 0.3, [0.2, -0.1, 0.05], falloff="medium"),
+            brushes.Twist([0.0, 0.2, 0.1], 0.4, [1.0, 1.0, 0.0], 50.0, falloff="tight"),
+            brushes.Scale([0.0, 0.0, 0.0], 0.3, 1.5, poisson=0.2),
+            brushes.Pinch([0.1, 0.1, 0.1], 0.35, [[0.3, 0.1, 0.0], [0.1, -0.3, 0.0], [0.0, 0.0, 0.0]])]
+    for b in made:
+        load = b.kernel_load()
+        fn = kernels.grab_displacement if load.kind == "grab" else kernels.affine_displacement
+        u = fn(x, load.center, load.load, load.eps, load.weights, load.beta)
+        np.testing.assert_allclose(u, b.displacement(x), rtol=0, atol=1e-15 * np.abs(u).max())
+
+    class MyGrab(brushes.Grab):
+        pass
+
+    assert MyGrab([0, 0, 0], 0.3, [0.1, 0, 0]).kernel_load() is None  # its field may differ
+    assert brushes.mirror(made[0], [1, 0, 0]).kernel_load() is None
