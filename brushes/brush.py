@@ -43,6 +43,8 @@ class PointLoads(NamedTuple):
     """Point loads whose summed field is a velocity at one time (`Brush.point_loads`): load l is
     the force ``forces[l]`` and the twist load ``torques[l]`` at ``centers[l]``, with radii
     ``eps[l]`` and weights ``weights[l]``, as `brushes.kernels.handles_displacement` sums them.
+    Along one flow only the centres and loads may change with t (else the flow takes its
+    generic loop).
 
     centers, forces, torques : (L, 3) float64.  eps, weights : (L, K) float64.  beta : float.
     """

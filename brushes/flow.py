@@ -146,6 +146,11 @@ def _loads_flow(brush, pts, solver, n):
     parts = stages[0]
     if len({p.beta for p in parts}) != 1:
         return None
+    for stage in stages[1:]:  # one kernel call needs the same loads' radii and weights throughout
+        if len(stage) != len(parts) or any(a.eps.shape != b.eps.shape or not np.array_equal(a.eps, b.eps)
+                                           or not np.array_equal(a.weights, b.weights)
+                                           for a, b in zip(stage, parts)):
+            return None
     K = max(p.eps.shape[1] for p in parts)
 
     def padded(a, fill):
