@@ -7,7 +7,7 @@ sphere when the model is not installed.
 
 The window's handlers only forward to the session and redraw; every decision (what a drag
 does, which key does what) is in the session and its pure helpers, and every binding is listed
-once in :data:`viewer.session.BINDINGS`, from which the help panel (F1) is made.
+once in :data:`viewer.bindings.BINDINGS`, from which the help panel (F1) is made.
 
 Run ``python -m viewer.app --bindings`` to print the bindings as a Markdown table.
 """
@@ -21,7 +21,7 @@ import numpy as np
 from viewer import overlay, palette
 from viewer.loading import MODEL_NAME, TerminalProgress, load_model, load_session
 from viewer.render import moved_rows
-from viewer.session import BINDINGS
+from viewer.bindings import BINDINGS
 
 __all__ = ["run", "open_viewer", "load_model", "Viewer", "ViewerError", "LoadingBar", "BINDINGS",
            "MODEL_NAME"]

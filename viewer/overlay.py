@@ -1,7 +1,7 @@
 """Text shown over the viewer: the status lines and the help panel (pure text, no OpenGL).
 
 The help panel and the README's binding table are both made from
-:data:`viewer.session.BINDINGS`, so they cannot drift apart.
+:data:`viewer.bindings.BINDINGS`, so they cannot drift apart.
 """
 
 __all__ = ["status_lines", "help_lines", "bindings_markdown", "format_volume_change"]

@@ -21,7 +21,7 @@ The contract (base classes in :mod:`viewer.tools.base`)
 -------------------------------------------------------
 A **command set** subclasses :class:`~viewer.tools.base.Commands` and lists its key rows in the
 class attribute ``bindings``, a tuple of ``(chord, action, description)`` (chords as
-:func:`viewer.session.chord` names them: ``"Ctrl+S"``, ``"Delete"``). When the key goes down
+:func:`viewer.bindings.chord` names them: ``"Ctrl+S"``, ``"Delete"``). When the key goes down
 the session calls ``instance.run(session, action)``, which by default calls
 ``instance.do_<action>(session)``; a returned string becomes the status message, and an
 ``OSError`` or ``ValueError`` is shown as ``failed: ...``.
@@ -56,7 +56,7 @@ Adding a tool
 -------------
 Write ``viewer/tools/NAME.py`` with one :class:`~viewer.tools.base.Tool` subclass and add the
 class to :data:`REGISTERED` below. Its key, its extra key rows and their actions then appear in
-:data:`viewer.session.BINDINGS`, the F1 help panel and ``python -m viewer.app --bindings`` (the
+:data:`viewer.bindings.BINDINGS`, the F1 help panel and ``python -m viewer.app --bindings`` (the
 README table); nothing else changes. Keys must not clash (a test checks the table).
 """
 

@@ -14,7 +14,7 @@ class Commands:
     Class attributes
     ----------------
     bindings : tuple of (chord, action, description)
-        Rows added to :data:`viewer.session.BINDINGS`; each ``action`` is run by :meth:`run`.
+        Rows added to :data:`viewer.bindings.BINDINGS`; each ``action`` is run by :meth:`run`.
     """
 
     bindings = ()
