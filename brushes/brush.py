@@ -291,15 +291,6 @@ class Grab(_Kelvinlet):
                           np.asarray(self._eps, dtype=np.float64)[None, :],
                           np.asarray(self._wn, dtype=np.float64)[None, :], float(self._beta))
 
-    def fused_mirror_flow(self, points, *, steps, H, shift):
-        """The grab and its image (centre H c + shift, move H m, also carried along) in one
-        fused pass: the Kelvinlet is covariant, H u(H x + shift; c, m) = u(x; H c + shift, H m)."""
-        if type(self) is not Grab:
-            return None
-        pts = np.ascontiguousarray(points, dtype=np.float64)
-        return flow_kernels.grab_pair_flow(pts, self.center, self.move, H @ self.center + shift, H @ self.move,
-                                           self._eps, self._wn, self._beta, steps)
-
 
 class _Affine(_Kelvinlet):
     """A locally affine brush: the Kelvinlet's gradient contracted with a 3x3 load F (de Goes &

@@ -139,9 +139,13 @@ def test_pins_mirror_and_subclasses_keep_the_generic_path(monkeypatch):
     b.apply(x)
     assert len(calls) == 1
     assert PlainGrab([0, 0, 0], 0.3, [0.1, 0, 0]).fused_flow(x, steps=1) is None
-    assert Mirrored(b, [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is not None  # grab and image fused
-    assert Mirrored(PlainGrab([0, 0, 0], 0.3, [0.1, 0, 0]), [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is None
-    assert PlainMirrored(b, [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is None
+    # a mirrored grab is two point loads (the loads kernel); a mirrored affine brush is fused
+    assert Mirrored(b, [1.0, 0.0, 0.0]).point_loads(0.5) is not None
+    assert Mirrored(pinch(Pinch), [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is not None
+    assert Mirrored(PlainGrab([0, 0, 0], 0.3, [0.1, 0, 0]), [1.0, 0.0, 0.0]).point_loads(0.5) is None
+    assert Mirrored(PlainPinch([0, 0, 0], 0.3, np.diag([0.2, -0.2, 0.0])), [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is None
+    assert PlainMirrored(b, [1.0, 0.0, 0.0]).point_loads(0.5) is None
+    assert PlainMirrored(pinch(Pinch), [1.0, 0.0, 0.0]).fused_flow(x, steps=1) is None
 
 
 class PlainMirrored(Mirrored):

@@ -11,8 +11,9 @@ stage times, the same stage arithmetic and the same closed-form profiles as the 
   profiles A, B ([dGJ17] eq. 9; `brushes.brush.Grab.velocity`);
 * affine (twist, scale, pinch): a fixed load F, velocity P F r + Q (F^T r + tr F r) + S (r . F r) r
   ([dGJ17] sec. 4; `brushes.brush._Affine.velocity`);
-* grab_pair, affine_pair: the sum of two such loads, the brush and its mirror image
-  (`brushes.mirror.Mirrored.velocity`, with the image's load given as its own centre and load);
+* affine_pair: the sum of two affine loads, the brush and its mirror image
+  (`brushes.mirror.Mirrored.velocity`, with the image's load given as its own centre and load;
+  a mirrored grab is two point loads, for `loads_flow` below);
 * loads: any number of point loads (forces and twist loads, the handles' field of
   `brushes.handles.LoadSolver.field`) whose centres and loads are given afresh at every stage
   time, each load with its own radii and weights: grabs, mirrored grabs and handles, with or
@@ -50,8 +51,8 @@ grab_flow(points, center, move, eps, w, beta, steps, out): velocity at time t is
     displacement with the centre at center + t * move (weights `w` carry the centre normalization).
 affine_flow(points, center, F, eps, w, beta, steps, out): velocity is the affine displacement of
     the fixed load F (3, 3).
-grab_pair_flow(points, center, move, center_b, move_b, ...), affine_pair_flow(points, center, F,
-    center_b, F_b, ...): velocity is the sum of two loads (a brush and its mirror image).
+affine_pair_flow(points, center, F, center_b, F_b, ...): velocity is the sum of two affine
+    loads (a brush and its mirror image).
 loads_flow(points, centers, forces, torques, eps, w, beta, steps, out): velocity at stage time
     index s (3 j, 3 j + 1, 3 j + 2 for t = j/steps, (j + 1/2)/steps, (j + 1)/steps) is the sum
     over loads l of the force forces[s, l] and twist load torques[s, l] at centers[s, l]
@@ -108,34 +109,25 @@ def _affine_stage(src, time_expr, dst, cse, K, indent):
     return "\n".join(lines)
 
 
-#: The names a stage reads its load from, and the names of a pair's second load.
-_SECOND_LOAD = {
-    "grab": {"center": "center_b", "move": "move_b",
-             **{f"{v}{a}": f"{v}{a}b" for v in "cm" for a in range(3)}},
-    "affine": {"center": "center_b", "F": "F_b", "tr": "trb",
-               **{f"c{a}": f"c{a}b" for a in range(3)},
-               **{f"F{a}{b}": f"F{a}{b}b" for a in range(3) for b in range(3)}},
-}
+#: The names an affine stage reads its load from, and the names of a pair's second load.
+_SECOND_LOAD = {"center": "center_b", "F": "F_b", "tr": "trb",
+                **{f"c{a}": f"c{a}b" for a in range(3)},
+                **{f"F{a}{b}": f"F{a}{b}b" for a in range(3) for b in range(3)}}
 
 
-def _second_load(text, kind):
+def _second_load(text):
     """`text` reading the pair's second load (whole names only: ``F`` -> ``F_b``, ``F00`` -> ``F00b``)."""
-    names = _SECOND_LOAD[kind]
-    return re.sub(r"\b(" + "|".join(names) + r")\b", lambda m: names[m.group(1)], text)
+    return re.sub(r"\b(" + "|".join(_SECOND_LOAD) + r")\b", lambda m: _SECOND_LOAD[m.group(1)], text)
 
 
-def _pair_stage(kind):
-    """A stage evaluating two loads of `kind` at the same point and time and adding them."""
-    single = {"grab": _grab_stage, "affine": _affine_stage}[kind]
-
-    def stage(src, time_expr, dst, cse, K, indent):
-        pad = " " * indent
-        for name in _SECOND_LOAD[kind]:
-            assert not re.search(rf"\b{name}\b", cse), f"profile block uses the load name {name}"
-        return "\n".join([single(src, time_expr, dst, cse, K, indent),
-                          _second_load(single(src, time_expr, ("v0", "v1", "v2"), cse, K, indent), kind),
-                          f"{pad}{dst[0]} += v0\n{pad}{dst[1]} += v1\n{pad}{dst[2]} += v2"])
-    return stage
+def _affine_pair_stage(src, time_expr, dst, cse, K, indent):
+    """A stage evaluating two affine loads at the same point and time and adding them."""
+    pad = " " * indent
+    for name in _SECOND_LOAD:
+        assert not re.search(rf"\b{name}\b", cse), f"profile block uses the load name {name}"
+    return "\n".join([_affine_stage(src, time_expr, dst, cse, K, indent),
+                      _second_load(_affine_stage(src, time_expr, ("v0", "v1", "v2"), cse, K, indent)),
+                      f"{pad}{dst[0]} += v0\n{pad}{dst[1]} += v1\n{pad}{dst[2]} += v2"])
 
 
 def _rk4_body(stage, cse, K, indent):
@@ -169,10 +161,8 @@ _SETUP = {
         F10, F11, F12 = F[1, 0], F[1, 1], F[1, 2]
         F20, F21, F22 = F[2, 0], F[2, 1], F[2, 2]"""),
 }
-for _kind in ("grab", "affine"):
-    _args, _setup = _SETUP[_kind]
-    _SETUP[_kind + "_pair"] = (_args + ", " + _second_load(_args, _kind),
-                               _setup + "\n" + _second_load(_setup, _kind))
+_SETUP["affine_pair"] = (_SETUP["affine"][0] + ", " + _second_load(_SETUP["affine"][0]),
+                         _SETUP["affine"][1] + "\n" + _second_load(_SETUP["affine"][1]))
 
 #: Points per block: a block's positions stay in the processor's cache while every RK4 stage runs
 #: over it in a loop with no branches, which the compiler vectorizes (a loop over steps inside
@@ -302,12 +292,11 @@ def _numba_block():
     grab_u, _, aff_u, _ = derive._profile_exprs()
     cse = {"grab": derive._cse_block(grab_u, ["pa", "pb"], 20, "g"),
            "affine": derive._cse_block(aff_u, ["pp", "pq", "ps"], 20, "h")}
-    cse["grab_pair"], cse["affine_pair"] = cse["grab"], cse["affine"]
-    stages = {"grab": _grab_stage, "affine": _affine_stage,
-              "grab_pair": _pair_stage("grab"), "affine_pair": _pair_stage("affine")}
+    cse["affine_pair"] = cse["affine"]
+    stages = {"grab": _grab_stage, "affine": _affine_stage, "affine_pair": _affine_pair_stage}
     counts = sorted({len(r) for r in derive.FALLOFF_RATIOS.values()})
     funcs, names = [], []
-    for kind in ("grab", "affine", "grab_pair", "affine_pair"):
+    for kind in ("grab", "affine", "affine_pair"):
         args, setup = _SETUP[kind]
         for K in counts:
             radii_setup = "\n".join(f"        e_{k} = eps[{k}]\n        w_{k} = w[{k}]" for k in range(K))
@@ -416,17 +405,6 @@ def affine_flow(points, center, F, eps, w, beta, steps, out=None):
     if fn is None:
         return _np_flow(_np_affine_velocity, points, center, F, eps, w, float(beta), steps, out)
     return fn(points, center, np.ascontiguousarray(F, dtype=np.float64), eps, w, float(beta), steps, out)
-
-
-def grab_pair_flow(points, center, move, center_b, move_b, eps, w, beta, steps, out=None):
-    """`steps` RK4 steps of two grabs carried along their motions (a grab and its mirror image):
-    (n, 3) float64 positions at t = 1."""
-    out, steps = _checked(points, out, steps)
-    fn = _kernel("grab_pair", len(eps))
-    if fn is None:
-        return _np_flow(_np_pair(_np_grab_velocity), points, (center, center_b), (move, move_b), eps, w,
-                        float(beta), steps, out)
-    return fn(points, center, move, center_b, move_b, eps, w, float(beta), steps, out)
 
 
 def affine_pair_flow(points, center, F, center_b, F_b, eps, w, beta, steps, out=None):
