@@ -283,15 +283,20 @@ def test_numba_kernels_match_numpy_kernels_directly():
             assert np.abs(got - ref).max() <= 1e-12 * np.abs(ref).max()
 
 
-@pytest.mark.parametrize("backend", ["numba", "numpy"])
-def test_turn_about_axis_is_scipys_rotation(backend, monkeypatch):
-    # The twist's closed-form flow: each point turned about the axis by phi = v . c / |c|^2.
-    # Outside reference: scipy's Rotation.from_rotvec (right-hand rule) applied point by point.
-    from scipy.spatial.transform import Rotation
-    if backend == "numpy":
+@pytest.fixture(params=["numba", "numpy"])
+def one_backend(request, monkeypatch):
+    """Run a test on each backend of the hand-written kernels (numpy as with PLIANT_BACKEND=numpy)."""
+    if request.param == "numpy":
         monkeypatch.setenv("PLIANT_BACKEND", "numpy")
     elif kernels.numba_module() is None:
         pytest.skip("numba is not importable here")
+    return request.param
+
+
+def test_turn_about_axis_is_scipys_rotation(one_backend):
+    # The twist's closed-form flow: each point turned about the axis by phi = v . c / |c|^2.
+    # Outside reference: scipy's Rotation.from_rotvec (right-hand rule) applied point by point.
+    from scipy.spatial.transform import Rotation
     rng = np.random.default_rng(21)
     center, axis = rng.normal(size=3), unit_rows(rng, 1)[0]
     pts = center + rng.normal(size=(500, 3))
@@ -307,15 +312,10 @@ def test_turn_about_axis_is_scipys_rotation(backend, monkeypatch):
         kernels.turn_about_axis(pts, center, axis, velocity[:-1])
 
 
-@pytest.mark.parametrize("backend", ["numba", "numpy"])
-def test_slide_along_rays_evaluates_scipys_spline(backend, monkeypatch):
+def test_slide_along_rays_evaluates_scipys_spline(one_backend):
     # The scale's table flow: points slide along their rays by exp(s(log |r|)). Outside
     # reference: scipy's own CubicSpline evaluation of the same spline.
     from scipy.interpolate import CubicSpline
-    if backend == "numpy":
-        monkeypatch.setenv("PLIANT_BACKEND", "numpy")
-    elif kernels.numba_module() is None:
-        pytest.skip("numba is not importable here")
     knots = np.linspace(-3.0, 2.0, 41)
     spline = CubicSpline(knots, 0.3 * np.sin(2.0 * knots) + 0.1 * knots)
     rng = np.random.default_rng(22)

@@ -198,14 +198,15 @@ def slide_along_rays(points, center, start, step, coefficients, core, out=None):
     if numba is None:
         r = pts - c0
         with np.errstate(divide="ignore"):
-            x = 0.5 * np.log(np.einsum("ij,ij->i", r, r))
+            x = 0.5 * np.log(np.einsum("ij,ij->i", r, r))  # -inf at the centre
         far[:] = x >= start + m * step
-        i = np.clip(np.floor((x - start) / step), 0, m - 1)
-        i = np.where(np.isfinite(i), i, 0).astype(np.int64)
-        u = x - (start + i * step)
+        inside = np.clip(x, start, start + m * step)  # the core and far rows are overwritten below
+        i = np.minimum(((inside - start) / step).astype(np.int64), m - 1)
+        u = inside - (start + i * step)
         lr = ((coef[0, i] * u + coef[1, i]) * u + coef[2, i]) * u + coef[3, i]
-        lr = np.where(x <= start, core, lr)
-        res[...] = c0 + r * np.exp(np.where(far, 0.0, lr))[:, None]
+        lr[x <= start] = core
+        lr[far] = 0.0
+        res[...] = c0 + r * np.exp(lr)[:, None]
         return res, far
     if _SLIDE is None:
         @numba.njit(parallel=True, cache=True, nogil=True)
