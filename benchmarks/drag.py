@@ -199,7 +199,8 @@ def bench_tools(n_vertices=655_000, *, repeats=5):
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="python -m benchmarks.drag",
                                      description="time the parts of one drag update of the viewer")
-    parser.add_argument("n_vertices", nargs="*", type=int, default=list(SIZES))
+    parser.add_argument("n_vertices", nargs="*", type=int,
+                        help=f"sizes (default {', '.join(map(str, SIZES))}; with --tools 655000)")
     parser.add_argument("--repeats", type=int, default=10)
     parser.add_argument("--tools", action="store_true",
                         help="instead: the brush part of every tool's stroke at each size")
@@ -207,8 +208,7 @@ def main(argv=None):
     from brushes.kernels import prefer_sleeping_threads
     prefer_sleeping_threads()  # as the `pliant` command does before the viewer's first kernel
     if args.tools:
-        sizes = args.n_vertices if argv and any(not a.startswith("-") for a in argv) else [655_000]
-        for n in sizes:
+        for n in args.n_vertices or [655_000]:
             print(f"| stroke, about {n:,} vertices | brush part | ratio to np.add | RK4 steps |")
             print("| --- | --- | --- | --- |")
             for name, ms, ratio, steps in bench_tools(n, repeats=args.repeats):
@@ -217,7 +217,7 @@ def main(argv=None):
     print("| vertices | np.add | brush (exact flow) | normals | of which NormalField | upload | UI thread | "
           "refit | normals redone | preview vs commit |")
     print("| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |")
-    for n in args.n_vertices:
+    for n in args.n_vertices or SIZES:
         r = bench_drag(n, repeats=args.repeats)
 
         def cell(part):

@@ -179,6 +179,18 @@ def test_bench_drag_runs_headless():
     assert int(n) >= 3000 and float(exact) <= 1e-6 and positive == "True"
 
 
+def test_bench_tools_times_every_stroke_on_a_small_mesh():
+    # A tiny run of `python -m benchmarks.drag --tools`: every tool's stroke, each with its steps.
+    from benchmarks.drag import bench_tools
+    rows = bench_tools(3000, repeats=1)
+    names = [name for name, _, _, _ in rows]
+    assert names[:4] == ["grab", "twist", "scale", "pinch"] and "grab + mirror" in names
+    assert "grab + 1 pin" in names and "handles, 2 + 1 pin" in names
+    assert all(ms > 0 and ratio > 0 and steps >= 0 for _, ms, ratio, steps in rows)
+    steps = dict((name, s) for name, _, _, s in rows)
+    assert steps["twist"] == 0 and steps["scale"] == 0  # closed forms: no RK4 steps
+
+
 def test_moved_rows_hand_case():
     a = np.array([[0.0, 0, 0], [1, 0, 0], [0, 2, 0]])
     b = np.array([[0.0, 0, 0], [1, 0, 0.5], [0, 2.09, 0]])
