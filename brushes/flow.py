@@ -16,7 +16,9 @@ turns each point by an angle of its distance, Scale slides points along rays), a
 velocity (`Brush.velocity`: a grab carries its centre along, so the centre lands on center + move),
 its bound (`Brush.velocity_lipschitz`, or `Brush.velocity_lipschitz_at` at each stage time when the
 brush overrides it), the same RK4 steps fused into one pass per point when the brush offers them
-(`Brush.fused_flow`, used with no pins), the segments pins must keep clear of
+(`Brush.fused_flow`, used with no pins), or the velocity as point loads at each stage time
+(`Brush.point_loads`: grabs, handles and their mirror images, pins' counter-loads added, summed
+per point in one generated pass), the segments pins must keep clear of
 (`Brush.pin_clearance`) and a brush that holds the pins itself (`Brush.pinned`; for Handles
 pins are handles that do not move).
 This module reads nothing private of any brush, so a subclass or a plug-in brush gets the same
